@@ -1,0 +1,22 @@
+# Long-slit reduction of one night. Rules live in pipeline/rules/*.smk and only
+# wire files to the step adapters in pipeline/ (see DEVELOPERS.md).
+from snakemake.utils import min_version, validate
+
+min_version("8.0")
+
+configfile: "config/config.yaml"
+
+validate(config, "config/schema.yaml")
+
+
+include: "pipeline/rules/common.smk"
+include: "pipeline/rules/calibration.smk"
+include: "pipeline/rules/wavelength.smk"
+include: "pipeline/rules/extraction.smk"
+include: "pipeline/rules/products.smk"
+
+
+rule all:
+    input:
+        all_products(),
+    default_target: True
