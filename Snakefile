@@ -13,6 +13,7 @@ include: "pipeline/rules/common.smk"
 include: "pipeline/rules/calibration.smk"
 include: "pipeline/rules/wavelength.smk"
 include: "pipeline/rules/extraction.smk"
+include: "pipeline/rules/fluxcal.smk"
 include: "pipeline/rules/products.smk"
 
 
