@@ -6,6 +6,10 @@ min_version("8.0")
 
 configfile: "config/config.yaml"
 
+from pipeline.config_check import check_config
+
+# Every problem on its own line, naming the key; then Snakemake fills the schema defaults.
+check_config(config, f"{workflow.basedir}/config/schema.yaml")
 validate(config, "config/schema.yaml")
 
 
