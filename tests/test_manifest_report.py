@@ -1,0 +1,71 @@
+"""Manifest and night report built from a small invented output folder."""
+
+import numpy as np
+from astropy.io import fits
+from astropy.table import Table
+
+from pipeline.manifest import build_manifest, product_kind, write_manifest_file
+from pipeline.report import write_night_report_file
+
+
+def _night_log():
+    return Table(rows=[
+        ("arc_001", "raw/arc_001.fits", "arc", "SETUPA", "ARC", "ok", ""),
+        ("sci_002", "raw/sci_002.fits", "science", "SETUPA", "TFG-42", "ok", ""),
+        ("focus_003", "raw/focus_003.fits", "ignored", "", "focus", "ignored", "frame type FOCUS is ignored"),
+        ("trunc_004", "raw/trunc_004.fits", "unknown", "", "", "rejected", "truncated file"),
+    ], names=("frame_id", "path", "frame_type", "setup", "object", "status", "reason"))
+
+
+def _out_dir(tmp_path):
+    out = tmp_path / "out"
+    (out / "calibrated").mkdir(parents=True)
+    (out / "qa").mkdir()
+    (out / "wavelength").mkdir()
+    header = fits.Header({"OBJECT": "TFG-42", "SETUP": "SETUPA", "INPUT01": "sci_002.fits"})
+    fits.PrimaryHDU(np.zeros((2, 2), np.float32), header=header).writeto(out / "calibrated" / "sci_002.fits")
+    qa = Table({"line": [1, 2], "residual_angstrom": [0.01, -0.02]})
+    qa.meta["rms_angstrom"] = 0.0158
+    qa.write(out / "wavelength" / "arc_001_qa.ecsv", format="ascii.ecsv")
+    (out / "qa" / "arc_001_residuals.png").write_bytes(b"\x89PNG\r\n\x1a\n")
+    _night_log().write(out / "night_log.ecsv", format="ascii.ecsv")
+    return out
+
+
+def test_kinds_follow_the_documented_layout():
+    assert product_kind("calibrations/master_bias_2x2.fits") == "master_bias"
+    assert product_kind("calibrations/master_bias_2x2_qa.ecsv") == "master_bias_qa"
+    assert product_kind("spectra/sci_002/TFG-42_ap1.fits") == "spectrum_1d"
+    assert product_kind("wavelength/arc_001_solution.fits") == "wavelength_solution"
+    assert product_kind("somewhere/else.txt") == "other"
+
+
+def test_manifest_lists_products_rejects_and_missing(tmp_path):
+    out = _out_dir(tmp_path)
+    expected = [str(out / "calibrated" / "sci_002.fits"), str(out / "wavelength" / "arc_001_solution.fits")]
+    table = build_manifest(out, expected=expected, night_log=_night_log())
+    rows = {r["path"]: r for r in table}
+    sci = rows["calibrated/sci_002.fits"]
+    assert (sci["kind"], sci["object"], sci["setup"], sci["source_frames"], sci["status"]) == (
+        "calibrated_frame", "TFG-42", "SETUPA", "sci_002.fits", "ok")
+    assert rows["wavelength/arc_001_solution.fits"]["status"] == "missing"
+    assert rows["wavelength/arc_001_qa.ecsv"]["source_frames"] == "arc_001.fits"  # from the night log
+    rejected = [r for r in table if r["kind"] == "raw_frame"]
+    assert {r["status"] for r in rejected} == {"ignored", "rejected"}
+    assert any("truncated" in r["note"] for r in rejected)
+    assert table.meta["n_missing"] == 1
+
+
+def test_report_shows_qa_numbers_figures_and_reasons(tmp_path):
+    out = _out_dir(tmp_path)
+    write_manifest_file(products=[], night_log=str(out / "night_log.ecsv"),
+                        manifest=str(out / "manifest.ecsv"), out_dir=str(out))
+    report = out / "night_report.html"
+    write_night_report_file(manifest=str(out / "manifest.ecsv"), night_log=str(out / "night_log.ecsv"),
+                            report=str(report), out_dir=str(out), title="RLS test night")
+    text = report.read_text()
+    assert "RLS test night" in text
+    assert "0.0158" in text                      # QA number from the table's metadata
+    assert "<img src='qa/arc_001_residuals.png'" in text
+    assert "truncated file" in text
+    assert "Wavelength solutions" in text
