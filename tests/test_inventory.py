@@ -1,0 +1,249 @@
+"""Tests of pipeline.inventory: classification, setups, associations, rejections.
+
+The raw frames are small synthetic FITS files written here with astropy (the
+truth is what the test wrote into each header), in the demo instrument's layout:
+uint16 pixels with BZERO in the PRIMARY HDU, DATASEC/BIASSEC, CCDSUM, GAIN, RDNOISE.
+"""
+
+import hashlib
+import math
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+from astropy.io import fits
+from astropy.table import Table
+from astropy.time import Time
+
+from pipeline.errors import InputFileWarning
+from pipeline.inventory import frame_id_from_path, take_inventory, write_night_log_file
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def instrument():
+    with open(REPO / "config" / "config.yaml") as f:
+        return yaml.safe_load(f)["instrument"]
+
+
+SETUP_A = dict(GRATING="G600", GRTILT=8.93, SLITWID=1.2, CCDSUM="2 2", FILTER="NONE")
+SETUP_B = dict(GRATING="G600", GRTILT=12.5, SLITWID=1.0, CCDSUM="2 2", FILTER="GG495")
+
+
+def write_raw(path, imagetyp, *, shape=(40, 36), date="2026-03-14T01:00:00", obj="",
+              exptime=10.0, setup=SETUP_A, extra=None, drop=()):
+    """A raw frame: 32 data columns + 4 overscan columns, uint16 with BZERO."""
+    ny, nx = shape
+    data = np.full(shape, 1000, dtype=np.uint16)
+    hdu = fits.PrimaryHDU(data)
+    h = hdu.header
+    h["IMAGETYP"] = imagetyp
+    h["OBJECT"] = obj
+    h["EXPTIME"] = exptime
+    h["DATE-OBS"] = date
+    h["AIRMASS"] = 1.2
+    for k, v in setup.items():
+        h[k] = v
+    h["DATASEC"] = f"[1:{nx - 4},1:{ny}]"
+    h["BIASSEC"] = f"[{nx - 3}:{nx},1:{ny}]"
+    h["GAIN"] = 1.5
+    h["RDNOISE"] = 4.0
+    for k, v in (extra or {}).items():
+        h[k] = v
+    for k in drop:
+        del h[k]
+    hdu.writeto(path, overwrite=True)
+    return path
+
+
+def good_night(folder):
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    write_raw(folder / "b1.fits", "BIAS", exptime=0.0)
+    write_raw(folder / "b2.fits", "ZERO", exptime=0.0)
+    write_raw(folder / "f1.fits", "FLAT", exptime=5.0)
+    write_raw(folder / "a_early.fits", "ARC", date="2026-03-14T00:10:00", extra={"LAMPS": "HgAr,Ne"})
+    write_raw(folder / "a_late.fits", "ARC", date="2026-03-14T03:00:00", extra={"LAMPS": "HgAr,Ne"})
+    write_raw(folder / "std1.fits", "STANDARD", obj="Tarn Std 1", date="2026-03-14T00:30:00")
+    write_raw(folder / "sci1.fits", "OBJECT", obj="Ridge Nebula", date="2026-03-14T02:40:00",
+              extra={"GRTILT": 8.9300001})   # header noise must not split the setup
+    write_raw(folder / "focus.fits", "FOCUS")
+    return folder
+
+
+def inventory_quiet(folder, instrument):
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        inv = take_inventory(folder, instrument)
+    return inv, [w for w in caught if issubclass(w.category, InputFileWarning)]
+
+
+def test_good_night_classification(tmp_path, instrument):
+    inv, warns = inventory_quiet(good_night(tmp_path), instrument)
+    types = {r.frame_id: (r.frame_type, r.status) for r in inv.records}
+    # truth: the IMAGETYP values written above and config/config.yaml frame_types
+    assert types == {"b1": ("bias", "ok"), "b2": ("bias", "ok"), "f1": ("flat", "ok"),
+                     "a_early": ("arc", "ok"), "a_late": ("arc", "ok"),
+                     "std1": ("standard", "ok"), "sci1": ("science", "ok"),
+                     "focus": ("ignored", "ignored")}
+    # one warning, for the ignored frame, naming the file
+    assert len(warns) == 1 and "focus.fits" in str(warns[0].message)
+    assert inv.setups() == ["G600_t08.93_s1.2_2x2_NONE"]
+    assert inv.readouts() == ["2x2"]
+    sci = inv.record("sci1")
+    assert sci.setup == "G600_t08.93_s1.2_2x2_NONE" and sci.readout == "2x2"
+    assert sci.object == "Ridge Nebula" and sci.exptime_s == 10.0
+    # MJD truth from astropy.time
+    assert sci.mjd == pytest.approx(Time("2026-03-14T02:40:00", scale="utc").mjd, abs=1e-9)
+    assert inv.bias_for("sci1") == "2x2"
+    assert [r.frame_id for r in inv.flats_for(sci.setup)] == ["f1"]
+    assert [r.frame_id for r in inv.standards_for(sci.setup)] == ["std1"]
+    # nearest arcs in time: sci1 at 02:40 -> a_late (03:00); std1 at 00:30 -> a_early (00:10)
+    assert inv.nearest_arc("sci1").frame_id == "a_late"
+    assert inv.nearest_arc("std1").frame_id == "a_early"
+    assert {r.frame_id for r in inv.calibrated_frames()} == {"a_early", "a_late", "std1", "sci1"}
+    assert inv.record("a_late").lamps == "HgAr,Ne"
+    assert inv.record("b1").setup == ""
+    with pytest.raises(KeyError, match="nope"):
+        inv.record("nope")
+
+
+def test_two_setups_and_frames_filter(tmp_path, instrument):
+    folder = good_night(tmp_path)
+    write_raw(folder / "f_b.fits", "FLAT", setup=SETUP_B)
+    write_raw(folder / "a_b.fits", "ARC", setup=SETUP_B)
+    write_raw(folder / "sci_b.fits", "OBJECT", obj="X", setup=SETUP_B)
+    inv, _ = inventory_quiet(folder, instrument)
+    assert inv.setups() == ["G600_t08.93_s1.2_2x2_NONE", "G600_t12.50_s1_2x2_GG495"]
+    assert [r.frame_id for r in inv.frames("flat", setup="G600_t12.50_s1_2x2_GG495")] == ["f_b"]
+    assert inv.nearest_arc("sci_b").frame_id == "a_b"
+    assert len(inv.frames(None, status=None)) == len(inv.records) == 11
+
+
+@pytest.mark.parametrize("case, expect", [
+    ("truncated", "truncated"),
+    ("not_fits", "not a readable FITS file"),
+    ("missing_keyword", "keyword EXPTIME missing"),
+    ("missing_type", "keyword IMAGETYP missing"),
+    ("unknown_type", "'DOMEFLATX' is not a known frame type"),
+    ("wrong_shape", "shape 36 x 50 (NAXIS1 x NAXIS2) differs from the 36 x 40"),
+    ("bad_section", "data section [1:99,1:40] lies outside"),
+    ("empty_file", "not a readable FITS file"),
+])
+def test_rejections_logged_with_reason(tmp_path, instrument, case, expect):
+    folder = good_night(tmp_path / "raw")
+    bad = folder / "bad.fits"
+    if case == "truncated":
+        write_raw(bad, "OBJECT", obj="T")
+        raw = bad.read_bytes()
+        bad.write_bytes(raw[: len(raw) - 2000])
+    elif case == "not_fits":
+        bad.write_text("this is a shopping list, not an image\n" * 100)
+    elif case == "empty_file":
+        bad.write_bytes(b"")
+    elif case == "missing_keyword":
+        write_raw(bad, "OBJECT", obj="T", drop=("EXPTIME",))
+    elif case == "missing_type":
+        write_raw(bad, "OBJECT", obj="T", drop=("IMAGETYP",))
+    elif case == "unknown_type":
+        write_raw(bad, "DOMEFLATX")
+    elif case == "wrong_shape":
+        write_raw(bad, "OBJECT", obj="T", shape=(50, 36))
+    elif case == "bad_section":
+        write_raw(bad, "OBJECT", obj="T", extra={"DATASEC": "[1:99,1:40]"})
+    inv, warns = inventory_quiet(folder, instrument)
+    rec = inv.record("bad")
+    assert rec.status == "rejected"
+    assert expect in rec.reason
+    # one-line warning naming the file and the reason
+    msgs = [str(w.message) for w in warns if "bad.fits" in str(w.message)]
+    assert len(msgs) == 1 and expect in msgs[0] and "\n" not in msgs[0]
+    # the rest of the night goes on
+    assert inv.record("sci1").status == "ok"
+    # and the night log carries the reason
+    log = tmp_path / "night_log.ecsv"
+    write_night_log_file(raw_frames=[str(p) for p in sorted(folder.iterdir())],
+                         night_log=str(log), raw_dir=str(folder), instrument=instrument)
+    table = Table.read(log, format="ascii.ecsv")
+    row = table[list(table["frame_id"]).index("bad")]
+    assert row["status"] == "rejected" and expect in row["reason"]
+
+
+def test_missing_calibrations_reject_science(tmp_path, instrument):
+    folder = tmp_path
+    write_raw(folder / "f1.fits", "FLAT")
+    write_raw(folder / "sci1.fits", "OBJECT", obj="Y")
+    write_raw(folder / "f_b.fits", "FLAT", setup=SETUP_B)
+    write_raw(folder / "b1.fits", "BIAS", setup=SETUP_B)
+    write_raw(folder / "sci_b.fits", "OBJECT", obj="Z", setup=SETUP_B)
+    inv, warns = inventory_quiet(folder, instrument)
+    # setup A has a flat but no arc; setup B has a flat but no arc either
+    assert inv.record("sci1").status == "rejected"
+    assert inv.record("sci1").reason == "no usable arcs for setup G600_t08.93_s1.2_2x2_NONE"
+    assert inv.setups() == []
+    # a different binning has no bias
+    write_raw(folder / "a1.fits", "ARC")
+    write_raw(folder / "sci_1x1.fits", "OBJECT", obj="Q",
+              setup={**SETUP_A, "CCDSUM": "1 1"})
+    inv, _ = inventory_quiet(folder, instrument)
+    assert inv.record("sci_1x1").reason == "no usable bias for readout mode 1x1"
+    assert inv.record("sci1").status == "ok"
+    with pytest.raises(KeyError, match="no usable bias"):
+        inv.bias_for("sci_1x1")
+
+
+def test_raw_files_untouched_and_ids(tmp_path, instrument):
+    folder = good_night(tmp_path)
+    before = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in folder.iterdir()}
+    inventory_quiet(folder, instrument)
+    after = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in folder.iterdir()}
+    assert before == after
+    assert frame_id_from_path("/x/night 3 (b).fits.gz") == "night-3-b"
+    assert frame_id_from_path("r0001.fit") == "r0001"
+
+
+def test_gzip_and_duplicate_ids(tmp_path, instrument):
+    import gzip
+    folder = good_night(tmp_path)
+    raw = (folder / "sci1.fits").read_bytes()
+    (folder / "sci1.fits.gz").write_bytes(gzip.compress(raw))
+    inv, _ = inventory_quiet(folder, instrument)
+    ids = [r.frame_id for r in inv.records]
+    assert len(ids) == len(set(ids))
+    assert {"sci1", "sci1-2"} <= set(ids)
+    # truncated gzip file
+    (folder / "sci1.fits.gz").write_bytes(gzip.compress(raw[:-1000]))
+    inv, _ = inventory_quiet(folder, instrument)
+    gz = [r for r in inv.records if r.path.endswith(".gz")][0]
+    assert gz.status == "rejected" and "truncated" in gz.reason
+
+
+def test_not_a_folder(tmp_path, instrument):
+    from pipeline.errors import InputFileError
+    with pytest.raises(InputFileError, match="raw_dir is not a folder"):
+        take_inventory(tmp_path / "missing", instrument)
+
+
+def test_empty_night_log(tmp_path, instrument):
+    log = tmp_path / "out" / "night_log.ecsv"
+    write_night_log_file(raw_frames=[], night_log=str(log), raw_dir=str(tmp_path),
+                         instrument=instrument)
+    assert len(Table.read(log, format="ascii.ecsv")) == 0
+
+
+def test_night_log_columns(tmp_path, instrument):
+    folder = good_night(tmp_path / "raw")
+    log = tmp_path / "night_log.ecsv"
+    write_night_log_file(raw_frames=[str(p) for p in folder.iterdir()], night_log=str(log),
+                         raw_dir=str(folder), instrument=instrument)
+    t = Table.read(log, format="ascii.ecsv")
+    for col in ("path", "frame_type", "setup", "object", "exptime_s", "date_obs", "status",
+                "reason"):
+        assert col in t.colnames
+    row = t[list(t["frame_id"]).index("sci1")]
+    assert row["nearest_arc"] == "a_late" and row["bias"] == "2x2"
+    assert math.isclose(row["exptime_s"], 10.0)
+    assert str(t["exptime_s"].unit) == "s"
