@@ -4,7 +4,7 @@ from snakemake.utils import min_version, validate
 
 min_version("8.0")
 
-configfile: "config/config.yaml"
+configfile: f"{workflow.basedir}/config/config.yaml"
 
 from pipeline.config_check import check_config
 
