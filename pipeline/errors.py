@@ -6,9 +6,9 @@ the HDU or keyword, the expected value and a fix.
 
 __all__ = [
     "PipelineError", "ConfigError", "InputFileError", "CalibrationError",
-    "WavelengthSolutionError", "ExtractionError",
+    "WavelengthSolutionError", "ExtractionError", "FluxCalibrationError",
     "PipelineWarning", "InputFileWarning", "CalibrationQualityWarning",
-    "ArcQualityWarning", "FlexureWarning", "OrderOverlapWarning",
+    "ArcQualityWarning", "FlexureWarning", "OrderOverlapWarning", "FluxCalibrationWarning",
 ]
 
 
@@ -49,6 +49,10 @@ class ExtractionError(PipelineError):
     """Tracing or extraction failed for a frame."""
 
 
+class FluxCalibrationError(PipelineError):
+    """No sensitivity can be fitted from the standard-star spectra given."""
+
+
 class PipelineWarning(UserWarning):
     """Base class of the pipeline's warnings (recoverable quality problems)."""
 
@@ -71,3 +75,7 @@ class FlexureWarning(PipelineWarning):
 
 class OrderOverlapWarning(PipelineWarning):
     """Light of another grating order falls on the detector inside the coverage."""
+
+
+class FluxCalibrationWarning(PipelineWarning):
+    """A spectrum stays uncalibrated, or extinction/sensitivity had to be extrapolated."""
