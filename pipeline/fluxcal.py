@@ -1180,16 +1180,14 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
     h = primary.header
     h["SETUP"] = (setup, "instrument setup id")
     h["STATUS"] = (status if fit is not None else "failed", "ok or failed")
-    h["REASON"] = (str(reason)[:68], "why the fit failed (empty when ok)")
-    if reason and len(str(reason)) > 68:
-        h.add_comment(f"REASON: {reason}")
+    h["REASON"] = str(reason)  # long strings continue on CONTINUE cards
     for i, name in enumerate(standards, start=1):
         h[f"STD{i:02d}"] = (str(name), "standard star used")
     for key, value in (header_extra or {}).items():
         h[key] = value
     hdus = [primary]
     if fit is not None:
-        h["SENSKIND"] = (fit.kind, "spline or chebyshev; sensitivity_mag = 2.5 log10 S")
+        h["SENSKIND"] = (fit.kind, "fit of 2.5 log10 S: spline or chebyshev")
         h["SENSDEG"] = (fit.degree, "spline degree or Chebyshev order")
         h["SENSUNIT"] = ("electron cm2 / erg", "unit of S")
         h["WAVEMIN"] = (fit.wave_min, "[Angstrom] shortest fitted wavelength")
