@@ -505,7 +505,10 @@ class SensitivityFit:
     knots : ndarray, Angstrom
         Full knot vector (spline) or the domain ``[min, max]`` (Chebyshev).
     wave_min, wave_max : float, Angstrom
-        Range of the fitted points; the curve is not evaluated outside.
+        Range of the fitted points.
+    max_extrapolation_angstrom : float, Angstrom
+        How far beyond the fitted range the curve is extended (linearly in
+        magnitudes, from the end's value and slope); NaN further out.
     info : dict
         ``n_used``, ``n_rejected``, ``n_iter``, ``rms_percent``,
         ``rms_binned_percent``, ``chi2_reduced``, ``rejected`` (bool array over
@@ -519,19 +522,37 @@ class SensitivityFit:
     knots: np.ndarray
     wave_min: float
     wave_max: float
+    max_extrapolation_angstrom: float = 0.0
     info: dict = field(default_factory=dict)
 
     def design(self, wave_angstrom):
-        """Design matrix, shape (n, m), at wavelengths inside the fitted range."""
-        return _design_matrix(self.kind, np.asarray(wave_angstrom, dtype=float), self.knots,
-                              self.degree)
+        """Design matrix, shape (n, m), of wavelengths inside :meth:`inside`.
+
+        Beyond the fitted range (up to ``max_extrapolation_angstrom``) the rows
+        extrapolate the curve linearly from its value and slope at the end, so
+        the error from the covariance grows with the distance.
+        """
+        wave = np.asarray(wave_angstrom, dtype=float)
+        rows = _design_matrix(self.kind, np.clip(wave, self.wave_min, self.wave_max),
+                              self.knots, self.degree)
+        step = min(1.0, 0.01 * (self.wave_max - self.wave_min))
+        for end, inward, beyond in ((self.wave_min, step, wave < self.wave_min),
+                                    (self.wave_max, -step, wave > self.wave_max)):
+            if np.any(beyond):
+                at = _design_matrix(self.kind, np.array([end, end + inward]), self.knots,
+                                    self.degree)
+                slope = (at[1] - at[0]) / inward
+                rows[beyond] = at[0] + (wave[beyond] - end)[:, None] * slope[None, :]
+        return rows
 
     def inside(self, wave_angstrom):
+        """True where the curve is defined: the fitted range plus the allowed extrapolation."""
         wave = np.asarray(wave_angstrom, dtype=float)
-        return (wave >= self.wave_min) & (wave <= self.wave_max)
+        reach = float(self.max_extrapolation_angstrom)
+        return (wave >= self.wave_min - reach) & (wave <= self.wave_max + reach)
 
     def mag(self, wave_angstrom):
-        """``2.5 log10 S`` at the given wavelengths; NaN outside the fitted range."""
+        """``2.5 log10 S`` at the given wavelengths; NaN outside :meth:`inside`."""
         wave = np.asarray(wave_angstrom, dtype=float)
         inside = self.inside(wave)
         out = np.full(wave.shape, np.nan)
@@ -625,7 +646,8 @@ def fit_with_rejection(design, y, sigma, *, clip, max_iterations=5):
 
 
 def fit_sensitivity(points, *, kind="spline", knot_spacing_angstrom=250.0, degree=3,
-                    clip_sigma=3.0, max_iterations=5, bin_width_angstrom=100.0):
+                    clip_sigma=3.0, max_iterations=5, bin_width_angstrom=100.0,
+                    max_extrapolation_angstrom=150.0):
     """Fit one smooth sensitivity curve to the points of one or more standards.
 
     Parameters
@@ -648,6 +670,9 @@ def fit_sensitivity(points, *, kind="spline", knot_spacing_angstrom=250.0, degre
     bin_width_angstrom : float, Angstrom
         Bin width for the binned rms reported in ``info`` (systematic misfit,
         with the pixel noise averaged down).
+    max_extrapolation_angstrom : float, Angstrom
+        The curve is extended this far beyond the fitted points (e.g. when the
+        end of the spectrum lies in an excluded absorption line).
 
     Returns
     -------
@@ -739,7 +764,8 @@ def fit_sensitivity(points, *, kind="spline", knot_spacing_angstrom=250.0, degre
                 bin_width_angstrom=float(bin_width_angstrom), clip_sigma=clip_sigma,
                 knot_spacing_angstrom=knot_spacing_angstrom, per_standard=per_standard,
                 rejected=rejected_per_points)
-    return SensitivityFit(kind, degree, coeffs, cov, knots, float(x.min()), float(x.max()), info)
+    return SensitivityFit(kind, degree, coeffs, cov, knots, float(x.min()), float(x.max()),
+                          float(max_extrapolation_angstrom), info)
 
 
 def _binned_rms_percent(x, ratio, width):
@@ -850,7 +876,8 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     cvar[good] = (flux[good] * sens_rel_err[good]) ** 2
     if include_sensitivity_error:
         fvar = fvar + cvar
-    info = dict(exptime_s=exptime_s, airmass=airmass,
+    beyond = covered & ((wave < sensitivity.wave_min) | (wave > sensitivity.wave_max))
+    info = dict(exptime_s=exptime_s, airmass=airmass, n_extrapolated=int(beyond.sum()),
                 extinction=(extinction.source if extinction is not None else "none"),
                 sensitivity_error_included=bool(include_sensitivity_error),
                 n_no_coverage=int((~covered).sum()))
@@ -1202,10 +1229,13 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
         model.header["SENSDEG"] = fit.degree
         model.header["WAVEMIN"] = fit.wave_min
         model.header["WAVEMAX"] = fit.wave_max
+        model.header["EXTRAPOL"] = (fit.max_extrapolation_angstrom,
+                                    "[Angstrom] allowed linear extrapolation")
         hdus.append(model)
         hdus.append(fits.ImageHDU(np.asarray(fit.knots, dtype=np.float64), name="KNOTS"))
         hdus.append(fits.ImageHDU(np.asarray(fit.covariance, dtype=np.float64), name="COVAR"))
-        grid = np.linspace(fit.wave_min, fit.wave_max, 512)
+        grid = np.linspace(fit.wave_min - fit.max_extrapolation_angstrom,
+                           fit.wave_max + fit.max_extrapolation_angstrom, 512)
         curve = Table({"wavelength_angstrom": grid, "sensitivity_mag": fit.mag(grid),
                        "sensitivity_mag_err": fit.mag_error(grid),
                        "sensitivity": fit.sensitivity(grid)})
@@ -1273,6 +1303,7 @@ def read_sensitivity(path):
                 covariance=np.array(hdul["COVAR"].data, dtype=float),
                 knots=np.array(hdul["KNOTS"].data, dtype=float),
                 wave_min=float(mh["WAVEMIN"]), wave_max=float(mh["WAVEMAX"]),
+                max_extrapolation_angstrom=float(mh.get("EXTRAPOL", 0.0)),
                 info={"rms_percent": header.get("RMSPCT"), "path": str(path)})
     except OSError as exc:
         raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc
@@ -1331,7 +1362,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                          extinction_table=None, setup="", fit_kind="spline",
                          knot_spacing_angstrom=250.0, degree=3, clip_sigma=3.0,
                          max_iterations=5, exclude_regions=(), error_floor_mag=0.002,
-                         site=None):
+                         max_extrapolation_angstrom=150.0, site=None):
     """Adapter of rule ``fit_sensitivity``: one sensitivity per setup.
 
     Parameters
@@ -1347,8 +1378,10 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
     extinction_table : str or None
         Site extinction table; None means no extinction correction (warned).
     setup : str
-    fit_kind, knot_spacing_angstrom, degree, clip_sigma, max_iterations, exclude_regions, error_floor_mag
-        See :func:`fit_sensitivity` and :func:`measure_sensitivity`.
+    fit_kind, knot_spacing_angstrom, degree, clip_sigma, max_iterations, max_extrapolation_angstrom
+        See :func:`fit_sensitivity`.
+    exclude_regions, error_floor_mag
+        See :func:`measure_sensitivity`.
     site : dict, optional
         ``latitude_deg``, ``longitude_deg``, ``height_m`` for spectra without AIRMASS.
 
@@ -1422,7 +1455,8 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         try:
             fit = fit_sensitivity(points, kind=fit_kind,
                                   knot_spacing_angstrom=knot_spacing_angstrom, degree=degree,
-                                  clip_sigma=clip_sigma, max_iterations=max_iterations)
+                                  clip_sigma=clip_sigma, max_iterations=max_iterations,
+                                  max_extrapolation_angstrom=max_extrapolation_angstrom)
         except FluxCalibrationError as exc:
             reason = str(exc)
     else:
@@ -1555,6 +1589,7 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                     "FLUXCAL": (True, "flux calibrated"),
                     "SENSFILE": (Path(sens_paths[0]).name, "sensitivity product used"),
                     "AIRMUSED": (airmass, f"airmass used ({how})"),
+                    "NEXTRAP": (cal.info["n_extrapolated"], "pixels with extrapolated sensitivity"),
                     "EXTTAB": ((extinction.source if extinction else "none")[:60],
                                "extinction table"),
                     "SENSERR": ("included" if include_sensitivity_error else "not in VAR",
@@ -1564,9 +1599,14 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                     extra[f"FCSTD{i + 1:02d}"] = (sens_header[key], "standard of the sensitivity")
                 write_fluxed_spectrum(target, spec, cal, header_extra=extra)
                 row.update(file=str(target), status="calibrated", reason="")
+                notes = []
+                if cal.info["n_extrapolated"]:
+                    notes.append(f"{cal.info['n_extrapolated']} pixels use the sensitivity "
+                                 "extrapolated beyond the standard's fitted range")
                 if cal.info["n_no_coverage"]:
-                    row["reason"] = (f"{cal.info['n_no_coverage']} pixels outside the "
-                                     "sensitivity's range (NaN, NO_COVERAGE)")
+                    notes.append(f"{cal.info['n_no_coverage']} pixels outside the "
+                                 "sensitivity's range (NaN, NO_COVERAGE)")
+                row["reason"] = "; ".join(notes)
                 plotted.append((f"{row['object']} {row['aperture']}".strip(), cal))
             except (PipelineError, ValueError) as exc:
                 row.update(status="uncalibrated", reason=str(exc))

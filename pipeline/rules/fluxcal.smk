@@ -73,6 +73,7 @@ rule fit_sensitivity:
         clip_sigma=FLUXCAL.get("clip_sigma", 3.0),
         max_iterations=FLUXCAL.get("max_iterations", 5),
         error_floor_mag=FLUXCAL.get("error_floor_mag", 0.002),
+        max_extrapolation_angstrom=FLUXCAL.get("max_extrapolation_angstrom", 150.0),
         exclude_regions=FLUXCAL.get("exclude_regions_angstrom", []),
         site=_FC_SITE,
     log:
