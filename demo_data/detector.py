@@ -12,11 +12,19 @@ canonical orientation (``canonical[y, x]``, wavelength increasing with ``x``) is
 and back ``raw[:, :nyb] = canonical.T[::-1]``.
 """
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
 
 __all__ = ["Detector", "canonical_to_raw", "raw_to_canonical", "bin_sum", "bin_mean"]
+
+
+@functools.lru_cache(maxsize=2)
+def _binned_response(detector):
+    resp = bin_mean(detector.pixel_response_phys(), detector.bin_y, detector.bin_x)
+    resp.setflags(write=False)
+    return resp
 
 
 def bin_sum(image, by, bx):
@@ -143,8 +151,8 @@ class Detector:
         return resp
 
     def pixel_response(self):
-        """Binned relative response (mean of the unbinned pixels)."""
-        return bin_mean(self.pixel_response_phys(), self.bin_y, self.bin_x)
+        """Binned relative response (mean of the unbinned pixels); a read-only cached array."""
+        return _binned_response(self)
 
     def dark_e_per_s(self):
         """Binned dark signal (e-/s): zero except the hot columns."""
@@ -220,7 +228,9 @@ class Detector:
         raw : ndarray of uint16, shape ``raw_shape``
         info : dict
             ``cosmic_e`` (binned canonical CR electrons), ``n_cosmic``,
-            ``bias_row_level_adu``, ``n_saturated``.
+            ``bias_row_level_adu`` (per raw row, shared by data and overscan),
+            ``bias_adu`` (noise-free bias, raw layout), ``n_saturated`` (pixels
+            at the ADC maximum).
         """
         signal = np.asarray(expected_e, float)
         if dark:
@@ -240,7 +250,7 @@ class Detector:
         n_sat = int(np.count_nonzero(adu >= self.adc_max_adu))
         raw = np.clip(adu, 0, self.adc_max_adu).astype(np.uint16)
         return raw, {"cosmic_e": cosmic, "n_cosmic": int(n_cosmic),
-                     "bias_row_level_adu": level, "n_saturated": n_sat}
+                     "bias_row_level_adu": level, "bias_adu": bias, "n_saturated": n_sat}
 
     def to_dict(self):
         return {

@@ -7,6 +7,8 @@ Output arrays are binned canonical ``(nyb, nxb)``: ``y`` along the slit, ``x``
 along increasing wavelength.
 """
 
+import functools
+
 import numpy as np
 from scipy.special import ndtr
 
@@ -108,9 +110,22 @@ def render_lines(optics, grid, wave_angstrom, rate_per_row, width_px, sigma_px, 
 
 
 def wavelength_edges(optics, grid, *, flexure_x_px=0.0):
-    """Wavelength at the binned pixel edges along X for every unbinned row, ``(ny_phys, nxb + 1)``."""
-    return optics.wavelength_of(grid.x_edges[None, :], grid.y_phys[:, None],
-                                flexure_x_px=flexure_x_px)
+    """Wavelength at the binned pixel edges along X for every unbinned row, ``(ny_phys, nxb + 1)``.
+
+    Cached for the last few (optics, grid, flexure) combinations; the returned
+    array is read-only.
+    """
+    return _wavelength_edges(optics, grid.nx_phys, grid.ny_phys, grid.bx, grid.by,
+                             float(flexure_x_px))
+
+
+@functools.lru_cache(maxsize=3)
+def _wavelength_edges(optics, nx_phys, ny_phys, bx, by, flexure_x_px):
+    grid = Grid(nx_phys, ny_phys, bx, by)
+    edges = optics.wavelength_of(grid.x_edges[None, :], grid.y_phys[:, None],
+                                 flexure_x_px=flexure_x_px)
+    edges.setflags(write=False)
+    return edges
 
 
 def render_continuum(optics, grid, spectrum, row_weight, *, flexure_x_px=0.0, lsf_sigma_angstrom=0.0,

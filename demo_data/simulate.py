@@ -268,6 +268,23 @@ class SimFrame:
         """Raw data section turned to the canonical orientation (ADU, float, bias not removed)."""
         return raw_to_canonical(self.raw, self.truth.instrument.detector.nyb).astype(float)
 
+    def electrons(self):
+        """The frame as a perfect CCD calibration would give it: canonical electrons.
+
+        ``(raw - true bias) * true gain`` on the data section, turned to the
+        canonical orientation: signal + photon noise + read noise + cosmic rays
+        (+ dark of hot columns); the pixel response is NOT divided out. Saturated
+        pixels keep their clipped value.
+        """
+        det = self.truth.instrument.detector
+        adu = self.raw.astype(float) - self.truth.info["bias_adu"]
+        return raw_to_canonical(adu, det.nyb) * det.gain_e_per_adu
+
+    def variance(self):
+        """Variance (electron^2) of :meth:`electrons`: expected signal + read noise^2 (no CRs)."""
+        det = self.truth.instrument.detector
+        return self.truth.expected_e.astype(float) + det.read_noise_e ** 2
+
     def write(self, path):
         return write_frame(self, path)
 
@@ -375,7 +392,7 @@ def _finish(inst, frame_type, exptime_s, optics, flexure_b, components, header, 
                               cosmic_rays=cosmic_rays)
     info = dict(info)
     info.update(n_cosmic=rinfo["n_cosmic"], n_saturated=rinfo["n_saturated"],
-                bias_row_level_adu=rinfo["bias_row_level_adu"])
+                bias_row_level_adu=rinfo["bias_row_level_adu"], bias_adu=rinfo["bias_adu"])
     truth = FrameTruth(frame_type, float(exptime_s), optics, float(flexure_b),
                        illum.astype(np.float32), (expected + det.dark_e_per_s() * exptime_s).astype(np.float32),
                        {k: v.astype(np.float32) for k, v in components.items()},
