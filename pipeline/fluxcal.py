@@ -914,8 +914,63 @@ class ExtractedSpectrum:
     unit: str = "electron"
 
 
+#: uncertainty HDU names in specutils' order of preference, with the power giving variance
+_UNCERT_HDUS = (("STD", 2), ("ERR", 2), ("UNCERT", 2), ("VAR", 1), ("IVAR", -1))
+
+
+def _read_wcs1d_direct(path, expected_unit):
+    """Read a one-spectrum-per-HDU FITS file with astropy only, the way specutils'
+    ``wcs1d-fits`` reader does (flux HDU FLUX/SCI/DATA/PRIMARY, uncertainty from
+    VAR/STD/ERR/UNCERT/IVAR, mask from MASK/DQ/QUALITY). Returns None when the file does not
+    look like that, so that the caller falls back to specutils (slow to import: ~1 s)."""
+    from astropy import units as u
+    from astropy.io import fits
+    from astropy.wcs import WCS, FITSFixedWarning
+
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            names = [h.name for h in hdul]
+            flux_hdu = next((hdul[n] for n in ("FLUX", "SCI", "DATA", "PRIMARY")
+                             if n in names and hdul[n].data is not None
+                             and isinstance(hdul[n], (fits.PrimaryHDU, fits.ImageHDU))), None)
+            if flux_hdu is None or flux_hdu.data.ndim != 1:
+                return None
+            header = flux_hdu.header.copy()
+            if header.get("WCSDIM", 1) != 1 or "CTYPE1" not in header:
+                return None
+            values = np.asarray(flux_hdu.data, dtype=float)
+            unc = next(((hdul[n].data, power) for n, power in _UNCERT_HDUS
+                        if n in names and hdul[n].data is not None), None)
+            mask_name = next((n for n in ("MASK", "DQ", "QUALITY")
+                              if n in names and hdul[n].data is not None), None)
+            mask = None
+            if mask_name is not None:
+                mask = np.asarray(hdul[mask_name].data)
+                if hdul[mask_name].header.get("BFORM", "B") in ("L", "X"):
+                    mask = mask.astype(bool)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", FITSFixedWarning)
+            wcs = WCS(header)
+        if wcs.naxis != 1:
+            return None
+        world = wcs.all_pix2world(np.arange(values.size), 0)[0]
+        cunit = u.Unit(wcs.wcs.cunit[0] or "Angstrom")
+        wave = (world * cunit).to_value(u.AA, equivalencies=u.spectral())
+        unit = u.Unit(header.get("BUNIT", ""))
+    except (OSError, ValueError, TypeError, u.UnitsError):
+        return None
+    if unc is None:
+        raise InputFileError(path, "no uncertainty HDU (VAR, STD or IVAR) found; expected the "
+                             "variance of every pixel")
+    data, power = unc
+    data = np.asarray(data, dtype=float)
+    with np.errstate(divide="ignore"):
+        var = data if power == 1 else (data ** 2 if power == 2 else 1.0 / data)
+    return wave, values, var, mask, header, unit
+
+
 def read_spectrum(path, *, expected_unit="electron"):
-    """Read a 1-D spectrum with ``specutils.Spectrum.read``.
+    """Read a 1-D spectrum as ``specutils.Spectrum.read`` does.
 
     Parameters
     ----------
@@ -938,10 +993,41 @@ def read_spectrum(path, *, expected_unit="electron"):
     """
     from astropy import units as u
     from astropy.io import fits
+
+    path = Path(path)
+    direct = _read_wcs1d_direct(path, expected_unit)
+    if direct is not None:
+        wave, values, var, mask, header, unit = direct
+    else:
+        wave, values, var, mask, header, unit = _read_with_specutils(path)
+    scale = 1.0
+    if expected_unit is not None:
+        try:
+            scale = (1.0 * unit).to_value(u.Unit(expected_unit))
+        except u.UnitConversionError as exc:
+            raise InputFileError(path, f"flux unit (BUNIT) is '{unit}', expected "
+                                 f"'{expected_unit}'") from exc
+        unit = u.Unit(expected_unit)
+    values = values * scale
+    var = var * scale ** 2
+    if mask is None:
+        mask = maskbits.empty_mask(values.shape)
+    else:
+        mask = np.asarray(mask)
+        mask = (np.where(mask, MaskBit.BAD_PIXEL, 0) if mask.dtype == bool else mask).astype(
+            maskbits.MASK_DTYPE)
+    header = header.copy() if isinstance(header, fits.Header) else fits.Header()
+    order = np.argsort(wave)
+    if not np.all(order == np.arange(wave.size)):
+        wave, values, var, mask = wave[order], values[order], var[order], mask[order]
+    return ExtractedSpectrum(wave, values, var, mask, header, str(path), unit.to_string())
+
+
+def _read_with_specutils(path):
+    from astropy import units as u
     from astropy.nddata import VarianceUncertainty
     from specutils import Spectrum
 
-    path = Path(path)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", category=Warning)
@@ -956,34 +1042,12 @@ def read_spectrum(path, *, expected_unit="electron"):
     except u.UnitConversionError as exc:
         raise InputFileError(path, f"spectral axis in {spec.spectral_axis.unit}, expected a "
                              "wavelength") from exc
-    unit = spec.flux.unit
-    scale = 1.0
-    if expected_unit is not None:
-        try:
-            scale = (1.0 * unit).to_value(u.Unit(expected_unit))
-        except u.UnitConversionError as exc:
-            raise InputFileError(path, f"flux unit (BUNIT) is '{unit}', expected "
-                                 f"'{expected_unit}'") from exc
-        unit = u.Unit(expected_unit)
     if spec.uncertainty is None:
         raise InputFileError(path, "no uncertainty HDU (VAR, STD or IVAR) found; expected the "
                              "variance of every pixel")
     var = np.asarray(spec.uncertainty.represent_as(VarianceUncertainty).array, dtype=float)
-    values = np.asarray(spec.flux.value, dtype=float) * scale
-    var = var * scale ** 2
-    mask = spec.mask
-    if mask is None:
-        mask = maskbits.empty_mask(values.shape)
-    else:
-        mask = np.asarray(mask)
-        mask = (np.where(mask, MaskBit.BAD_PIXEL, 0) if mask.dtype == bool else mask).astype(
-            maskbits.MASK_DTYPE)
-    header = spec.meta.get("header")
-    header = header.copy() if isinstance(header, fits.Header) else fits.Header()
-    order = np.argsort(wave)
-    if not np.all(order == np.arange(wave.size)):
-        wave, values, var, mask = wave[order], values[order], var[order], mask[order]
-    return ExtractedSpectrum(wave, values, var, mask, header, str(path), unit.to_string())
+    return (wave, np.asarray(spec.flux.value, dtype=float), var, spec.mask,
+            spec.meta.get("header"), spec.flux.unit)
 
 
 def read_spectra_directory(directory):
@@ -1113,6 +1177,18 @@ def _wcs_matches(header, wave_angstrom):
     return bool(np.allclose(world, wave_angstrom, rtol=0, atol=1e-6 * np.min(np.diff(wave_angstrom))))
 
 
+def _set_cards(header, cards):
+    """Set keywords from a mapping of value or (value, comment); a comment that would not
+    fit on the card is dropped (long string values continue on CONTINUE cards)."""
+    for key, value in (cards or {}).items():
+        comment = None
+        if isinstance(value, tuple):
+            value, comment = value
+        header[key] = value
+        if comment and len(str(header.cards[key])) + len(comment) + 3 <= 80:
+            header.comments[key] = comment
+
+
 _WCS_KEYS = re.compile(r"^(CTYPE|CUNIT|CRPIX|CRVAL|CDELT|CD\d_|PC\d_|PV\d_|PS\d_|WCSAXES|"
                        r"SPECSYS|SSYSOBS|RESTWAV|RESTFRQ|CNAME|CSYER|CRDER|WCSNAME)")
 
@@ -1157,8 +1233,7 @@ def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None):
                 del header[key]
         header.update(cards)
     header["BUNIT"] = (FLUX_UNIT, "flux density above the atmosphere")
-    for key, value in (header_extra or {}).items():
-        header[key] = value
+    _set_cards(header, header_extra)
     provenance.stamp(header, inputs=[spectrum.path])
     primary = fits.PrimaryHDU(np.asarray(calibrated.flux, dtype=np.float64), header=header)
     primary.name = "FLUX"
@@ -1210,8 +1285,7 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
     h["REASON"] = str(reason)  # long strings continue on CONTINUE cards
     for i, name in enumerate(standards, start=1):
         h[f"STD{i:02d}"] = (str(name), "standard star used")
-    for key, value in (header_extra or {}).items():
-        h[key] = value
+    _set_cards(h, header_extra)
     hdus = [primary]
     if fit is not None:
         h["SENSKIND"] = (fit.kind, "fit of 2.5 log10 S: spline or chebyshev")
@@ -1495,7 +1569,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                 wave_max_angstrom=fit.wave_max, standards=used_names)
     write_sensitivity(sensitivity, fit, points, setup=setup, standards=used_names,
                       inputs=inputs,
-                      header_extra={"EXTTAB": ((extinction.source if extinction else "none")[:60],
+                      header_extra={"EXTTAB": ((extinction.source if extinction else "none"),
                                                "extinction table")})
     _qa_table(rows, meta).write(qa_table, format="ascii.ecsv", overwrite=True)
     qa_flux.plot_sensitivity(fit, points, qa_plot, exclude_regions=regions,
@@ -1590,7 +1664,7 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                     "SENSFILE": (Path(sens_paths[0]).name, "sensitivity product used"),
                     "AIRMUSED": (airmass, f"airmass used ({how})"),
                     "NEXTRAP": (cal.info["n_extrapolated"], "pixels with extrapolated sensitivity"),
-                    "EXTTAB": ((extinction.source if extinction else "none")[:60],
+                    "EXTTAB": ((extinction.source if extinction else "none"),
                                "extinction table"),
                     "SENSERR": ("included" if include_sensitivity_error else "not in VAR",
                                 "sensitivity error; always in HDU CALVAR"),
