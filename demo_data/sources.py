@@ -289,7 +289,7 @@ def _galaxy_continuum(wave_angstrom):
     lam = np.asarray(wave_angstrom, float)
     z = TARGETS["TRG-511"].redshift
     rest = lam / (1 + z)
-    return 2.2e-17 * (rest / 5000.0) ** 0.6 * (1 - 0.45 / (1 + np.exp((rest - 4000.0) / 40.0)))
+    return 4.5e-17 * (rest / 5000.0) ** 0.6 * (1 - 0.45 / (1 + np.exp((rest - 4000.0) / 40.0)))
 
 
 @dataclass(frozen=True)
@@ -325,7 +325,7 @@ TARGETS = {
                            "table": "demo_data/standards/TRS-17.ecsv"}),
     "TRV-9": Target("TRV-9", "point", 150.5830, -24.1380, _star_flux(2.5e-16, 5600.0),
                     info={"role": "faint continuum star (5600 K blackbody)"}),
-    "TRB-2": Target("TRB-2", "point", 127.0110, -23.9050, _star_flux(2.4e-12, 9500.0),
+    "TRB-2": Target("TRB-2", "point", 127.0110, -23.9050, _star_flux(3.6e-12, 9500.0),
                     info={"role": "bright star that saturates the detector (9500 K blackbody)"}),
     "TRG-511": Target(
         "TRG-511", "extended", 116.9150, -21.4470, _galaxy_continuum, redshift=0.08231,

@@ -1,0 +1,502 @@
+"""Tests of the demo-night simulator (demo_data/) against independent truth.
+
+Check values and their sources:
+* line positions: the grating equation solved here, in the test, from the true
+  parameters (m lambda = d cos(gamma) (sin alpha + sin beta); camera
+  X = X_c + offset + f tan(beta - beta_c)/p; distortion and line tilt as
+  documented in demo_data/README.md),
+* photon numbers: f_lambda * area * lambda/(h c) * throughput * atmosphere
+  integrated here with scipy.integrate.quad,
+* line lists: the shared reference tables (../shared/reference, sources in its
+  README.md),
+* extinction shape: the La Silla mean curve (TUG77) of ../shared/reference,
+* noise: Poisson and Gaussian statistics (photon-transfer relation, common practice).
+"""
+
+import ast
+import csv
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from astropy.io import fits
+from astropy.table import Table
+from scipy.integrate import quad
+from scipy.special import erf
+from scipy.stats import trim_mean
+
+import demo_data.simulate as sim
+from demo_data import sources as src
+
+REPO = Path(__file__).resolve().parents[1]
+REF = REPO.parent / "shared" / "reference"
+PNG_DIR = Path("/tmp/test_simulator_png")
+
+
+def _ref_rows(name):
+    path = REF / name
+    if not path.exists():
+        pytest.skip(f"shared reference table {path} not found (expected at repo-root/../shared/reference)")
+    with open(path, newline="") as fh:
+        return list(csv.DictReader(line for line in fh if not line.startswith("#")))
+
+
+def _own_rows(name):
+    with open(REPO / "demo_data" / "data" / name, newline="") as fh:
+        return list(csv.DictReader(line for line in fh if not line.startswith("#")))
+
+
+# ----------------------------------------------------------------------------- fixtures
+@pytest.fixture(scope="module")
+def inst():
+    return sim.make_instrument()
+
+
+@pytest.fixture(scope="module")
+def night_dir(tmp_path_factory):
+    """The small demo night made through the documented command line."""
+    out = tmp_path_factory.mktemp("night") / "raw"
+    subprocess.run([sys.executable, "-m", "demo_data.simulate", "--out", str(out), "--quiet"],
+                   check=True, cwd=REPO, timeout=120)
+    return out
+
+
+@pytest.fixture(scope="module")
+def index(night_dir):
+    return json.loads((night_dir / "truth" / "index.json").read_text())
+
+
+# ----------------------------------------------------------------------------- independent optics
+def grating_x_binned(wave, y_b, p, *, bx=2, by=2, flexure_b=0.0):
+    """Binned canonical x of wavelength ``wave`` at binned row ``y_b``, solved here.
+
+    Written independently of demo_data.optics from the documented model.
+    """
+    Y = by * np.asarray(y_b, float) + 0.5 * (by - 1)
+    d = 1.0e7 / p["groove_density_per_mm"]
+    alpha = np.deg2rad(p["tilt_deg"] + p["camera_collimator_angle_deg"] / 2)
+    beta_c = np.deg2rad(p["tilt_deg"] - p["camera_collimator_angle_deg"] / 2)
+    xc, yc = (p["nx_phys"] - 1) / 2, (p["ny_phys"] - 1) / 2
+    f, pix = p["camera_focal_length_mm"], p["pixel_size_mm"]
+    gamma = np.arctan((Y - yc) * pix / f)
+    beta = np.arcsin(p["order"] * np.asarray(wave, float) / (d * np.cos(gamma)) - np.sin(alpha))
+    x_ideal = xc + p["detector_offset_px"] + f * np.tan(beta - beta_c) / pix
+    u = (x_ideal - xc) / (p["nx_phys"] / 2)
+    X = x_ideal + p["distortion_a3_px"] * u ** 3 + p["line_tilt_px_per_px"] * (Y - yc) + bx * flexure_b
+    return (X - 0.5 * (bx - 1)) / bx
+
+
+def _isolated(xc, *, sep=14.0, lo=15.0, hi=1008.0):
+    return [i for i in range(len(xc))
+            if lo < xc[i] < hi and np.all(np.abs(np.delete(xc, i) - xc[i]) > sep)]
+
+
+# ----------------------------------------------------------------------------- optics
+@pytest.mark.parametrize("grtilt, lamps, flexure", [(8.93, "HgAr,Ne", 0.13), (11.83, "Ne,He,Ar", -0.21)])
+def test_arc_lines_sit_where_the_grating_equation_puts_them(inst, grtilt, lamps, flexure):
+    arc = sim.make_arc(inst, grtilt, lamps=lamps, flexure_x_px=flexure, filter_name="NONE",
+                       poisson=False, read_noise=False, cosmic_rays=False)
+    p = arc.truth.optics.to_dict()
+    lines = arc.truth.info["lines"]
+    rows = np.arange(256)
+    solved = grating_x_binned(lines["wavelength_air_angstrom"][:, None], rows[None, :], p,
+                              flexure_b=flexure)
+    # the simulator's own line table against the grating equation solved here
+    np.testing.assert_allclose(lines["x_px_per_row"], solved, atol=1e-3, rtol=0)
+    # the rendered pixels: first moment of each isolated line in every 5th row
+    img = arc.truth.illumination_e.astype(float)
+    iso = _isolated(solved[:, 128])
+    assert len(iso) >= 8, f"only {len(iso)} isolated lines"
+    worst = 0.0
+    for i in iso:
+        for y in range(8, 248, 5):
+            x0 = solved[i, y]
+            lo, hi = int(round(x0)) - 7, int(round(x0)) + 8
+            prof = img[y, lo:hi]
+            centroid = (prof * np.arange(lo, hi)).sum() / prof.sum()
+            worst = max(worst, abs(centroid - x0))
+    assert worst < 1e-3, f"rendered line centroid off the grating equation by {worst:.5f} px"
+
+
+def test_true_optics_differ_from_nominal_as_specified(inst):
+    for grtilt in (8.93, 11.83):
+        optics = inst.optics(grtilt)
+        assert 0.1 <= abs(optics.tilt_deg - grtilt) <= 0.3
+    err = abs(inst.focal_length_mm / 250.0 - 1)  # nominal 250 mm: config/config.yaml
+    assert 0.005 <= err <= 0.01
+
+
+def test_lines_are_tilted_and_curved_along_the_slit(inst):
+    arc = sim.make_arc(inst, 8.93, poisson=False, read_noise=False, cosmic_rays=False)
+    x = arc.truth.line_x_px(5460.735)  # Hg I, ASDq
+    tilt = x[-1] - x[0]
+    # shear 0.0045 unbinned px per unbinned row over 510 rows, in binned px, plus curvature
+    assert 0.8 < tilt < 1.6
+    mid = x[128] - 0.5 * (x[0] + x[-1])
+    assert abs(mid) > 0.01, "no curvature along the slit"
+
+
+def test_wavelength_map_inverts_the_grating_equation(night_dir, index):
+    for name, setup in index["setups"].items():
+        wmap = fits.getdata(night_dir / "truth" / setup["wavelength_map"])
+        assert wmap.shape == (256, 1024)
+        assert np.all(np.diff(wmap, axis=1) > 0), "wavelength must increase with canonical x"
+        rng = np.random.default_rng(5)
+        ys, xs = rng.integers(0, 256, 300), rng.integers(0, 1024, 300)
+        x_back = grating_x_binned(wmap[ys, xs], ys, setup["optics"])
+        np.testing.assert_allclose(x_back, xs, atol=1e-6)
+
+
+def test_flexure_shifts_the_wavelength_scale(inst):
+    optics = inst.optics(8.93)
+    base = sim.wavelength_map(inst, optics)
+    shifted = sim.wavelength_map(inst, optics, flexure_x_px=0.3)
+    # lambda_flexed(x) = lambda_0(x - 0.3): compare by interpolation along a row
+    x = np.arange(1024.0)
+    np.testing.assert_allclose(shifted[100, 5:-5], np.interp(x[5:-5] - 0.3, x, base[100]), atol=2e-4)
+
+
+def test_raw_orientation_wavelength_decreases_with_row(night_dir, index):
+    setup = index["setups"]["G600_t08.93_NONE"]
+    wmap = fits.getdata(night_dir / "truth" / setup["wavelength_map"])
+    raw_order = wmap.T[::-1]           # raw[r, c] = canonical[c, nx - 1 - r]
+    assert np.all(np.diff(raw_order, axis=0) < 0)
+    # the brightest Hg line in the first arc lies where the map says, in RAW pixels
+    data = fits.getdata(night_dir / "rls_0013.fits").astype(float)
+    r = np.argmin(np.abs(raw_order[:, 128] - 5460.735))
+    col = data[:, 128]
+    assert abs(np.argmax(col[r - 10:r + 11]) - 10) <= 1
+
+
+# ----------------------------------------------------------------------------- line lists
+def test_arc_line_table_is_the_verified_reference_rows():
+    ref = _ref_rows("arc_lines_air.csv")
+    verified = {(r["species"], r["wavelength_air_angstrom"]): r for r in ref if r["source"] != "memory"}
+    own = _own_rows("arc_lines_air.csv")
+    assert len(own) == len(verified)
+    for row in own:
+        key = (row["species"], row["wavelength_air_angstrom"])
+        assert key in verified, f"{key} is not a verified reference row"
+        assert row["relative_intensity"] == verified[key]["relative_intensity"]
+        assert row["source"] == verified[key]["source"]
+    # and what the lamps emit is taken from it
+    waves, rates, species = src.lamp_lines("HgAr,Ne")
+    assert set(species) == {"Hg I", "Ar I", "Ne I"}
+    ref_w = {float(r["wavelength_air_angstrom"]) for r in verified.values()
+             if r["species"] in ("Hg I", "Ar I", "Ne I")}
+    assert set(waves.tolist()) == ref_w
+    assert np.all(rates > 0)
+
+
+def test_sky_line_table_matches_reference():
+    ref = _ref_rows("sky_lines_air.csv")
+    own = _own_rows("sky_lines_air.csv")
+    assert [(r["species"], r["wavelength_air_angstrom"], r["source"]) for r in own] == \
+        [(r["species"], r["wavelength_air_angstrom"], r["source"]) for r in ref]
+
+
+# ----------------------------------------------------------------------------- photon numbers and noise
+def test_standard_star_counts_match_expected_photons(inst):
+    airmass, exptime, seeing = 1.3, 60.0, 1.1
+    frame = sim.make_science(inst, 8.93, target="TRS-17", exptime_s=exptime, airmass=airmass,
+                             flexure_x_px=0.0, seeing_fwhm_arcsec=seeing, slit_offset_arcsec=0.0,
+                             sky=False, cosmic_rays=False, frame_type="STANDARD", seed=11)
+    optics = frame.truth.optics
+    y_trace = 2 * frame.truth.info["trace"]["trace_y_px"][512] + 0.5
+    lam0, lam1 = optics.wavelength_of(-0.5, y_trace), optics.wavelength_of(2047.5, y_trace)
+    h_c = 6.62607015e-27 * 2.99792458e18  # erg A, CODATA exact
+
+    def photons(lam):
+        sigma = seeing * (lam / 5000.0) ** -0.2 / 2.3548
+        slit = erf(0.6 / (np.sqrt(2) * sigma))            # 1.2" slit, centred Gaussian star
+        return (src.standard_star_flux(lam) * src.TELESCOPE_AREA_CM2 * lam / h_c
+                * src.throughput(lam, optics, "NONE") * 10 ** (-0.4 * src.extinction_mag_per_airmass(lam) * airmass)
+                * src.telluric_transmission(lam, airmass) * slit * exptime)
+
+    expected, _ = quad(photons, lam0, lam1, limit=400)
+    model = frame.truth.components["object"].sum()
+    assert model == pytest.approx(expected, rel=1e-3)
+    # the written pixels: bias removed with the true bias, gain, response and dark divided out
+    det = inst.detector
+    adu = frame.raw.astype(float) - frame.truth.info["bias_adu"]
+    e = sim.raw_to_canonical(adu, det.nyb) * det.gain_e_per_adu - det.dark_e_per_s() * exptime
+    resp = det.pixel_response()
+    measured = (e / resp).sum()
+    var = ((frame.truth.expected_e + det.read_noise_e ** 2 + det.gain_e_per_adu ** 2 / 12) / resp ** 2).sum()
+    assert abs(measured - expected) < 4 * np.sqrt(var), \
+        f"{measured:.0f} vs {expected:.0f} (sigma {np.sqrt(var):.0f})"
+
+
+def test_flat_pair_photon_transfer_gives_true_gain_and_poisson_noise(inst):
+    f1 = sim.make_flat(inst, 8.93, exptime_s=6.0, seed=1, cosmic_rays=False)
+    f2 = sim.make_flat(inst, 8.93, exptime_s=6.0, seed=2, cosmic_rays=False)
+    b1 = f1.raw.astype(float) - f1.truth.info["bias_adu"]
+    b2 = f2.raw.astype(float) - f2.truth.info["bias_adu"]
+    region = (slice(100, 900), slice(20, 60))   # raw rows x data columns, well illuminated
+    diff_var = np.var(b1[region] - b2[region]) / 2
+    mean = 0.5 * (b1[region] + b2[region]).mean()
+    rn_adu = inst.detector.read_noise_e / inst.detector.gain_e_per_adu
+    gain = mean / (diff_var - rn_adu ** 2 - 1 / 12)
+    assert gain == pytest.approx(inst.detector.gain_e_per_adu, rel=0.02)
+    assert f1.header["GAIN"] != pytest.approx(inst.detector.gain_e_per_adu, rel=0.01)
+    # per-pixel normalised residuals of the whole flat: unit variance (Poisson + read noise)
+    e = f1.electrons()
+    chi = (e - f1.truth.expected_e) / np.sqrt(f1.variance() + inst.detector.gain_e_per_adu ** 2 / 12)
+    assert np.var(chi) == pytest.approx(1.0, abs=0.01)
+
+
+def test_bias_overscan_tracks_rows_and_read_noise(inst):
+    bias = sim.make_bias(inst, seed=9, cosmic_rays=False)
+    raw = bias.raw.astype(float)
+    pattern = inst.detector.bias_pattern_adu()
+    data_rows = (raw[:, :256] - pattern).mean(axis=1)
+    over_rows = raw[:, 256:].mean(axis=1)
+    rn_adu = inst.detector.read_noise_e / inst.detector.gain_e_per_adu
+    resid = data_rows - over_rows
+    # residual set by read noise only: rn * sqrt(1/256 + 1/32)
+    assert np.std(resid) == pytest.approx(rn_adu * np.sqrt(1 / 256 + 1 / 32), rel=0.1)
+    assert np.std(over_rows) > 2 * np.std(resid), "overscan carries no row structure"
+    assert 990 < np.median(raw) < 1010
+    noise = np.std(raw[:, :256] - pattern - over_rows[:, None]) * inst.detector.gain_e_per_adu
+    assert noise == pytest.approx(inst.detector.read_noise_e, rel=0.05)
+
+
+def test_cosmic_rays_scale_with_exposure_and_are_in_the_pixels(inst):
+    det = inst.detector
+    area = (det.nx_phys * 0.0015) * (det.ny_phys * 0.0015)  # cm^2: 15-um pixels
+    counts = {}
+    for t in (60.0, 1200.0):
+        n = [sim.make_science(inst, 8.93, target=None, exptime_s=t, sky=False, seed=s).truth.info["n_cosmic"]
+             for s in (1, 2)]
+        counts[t] = sum(n)
+        mean = 2 * det.cosmic_ray_rate_per_cm2_s * area * (t + det.readout_time_s)
+        assert abs(counts[t] - mean) < 4 * np.sqrt(mean) + 1
+    assert counts[1200.0] > 5 * counts[60.0]
+    frame = sim.make_science(inst, 8.93, target=None, exptime_s=1200.0, seed=3)
+    hit = frame.truth.cosmic_e > 300
+    excess = (frame.electrons() - frame.truth.expected_e)[hit]
+    assert np.mean(excess > 5 * np.sqrt(frame.variance()[hit])) > 0.97
+
+
+def test_saturated_group_only_in_the_bright_star_frame(night_dir, index):
+    for fid, entry in index["frames"].items():
+        if entry["kind"] in ("arc", "flat", "standard") or entry.get("target") in ("TRG-511", "TRV-9"):
+            if entry["defect"]:
+                continue
+            assert fits.getdata(night_dir / entry["file"]).max() < 65000, fid
+    data = fits.getdata(night_dir / "rls_0018.fits")
+    nsat = np.count_nonzero(data >= 65000)   # config saturation_adu
+    assert 5 <= nsat < 0.02 * data.size
+    assert index["frames"]["rls_0018"]["target"] == "TRB-2"
+
+
+# ----------------------------------------------------------------------------- targets
+def test_trace_and_galaxy_lines_match_truth(inst):
+    star = sim.make_science(inst, 8.93, target="TRV-9", exptime_s=900, sky=False, cosmic_rays=False,
+                            poisson=False, read_noise=False, trace_y_px=140.0, trace_drift_px=(1.6, 0.8))
+    obj = star.truth.components["object"].astype(float)
+    y = np.arange(256)[:, None]
+    centroid = (obj * y).sum(axis=0) / obj.sum(axis=0)
+    tr = star.truth.info["trace"]
+    np.testing.assert_allclose(centroid[10:-10], tr["trace_y_px"][10:-10], atol=5e-3)
+    np.testing.assert_allclose(obj.sum(axis=0), tr["object_electrons"], rtol=1e-5)
+    assert tr["trace_y_px"].max() - tr["trace_y_px"].min() > 2.0   # drifts a few pixels
+
+    gal = sim.make_science(inst, 8.93, target="TRG-511", exptime_s=1200, sky=False, cosmic_rays=False,
+                           poisson=False, read_noise=False)
+    line = next(ln for ln in gal.truth.info["galaxy_lines"] if ln["name"] == "[O III] 5007")
+    z = src.TARGETS["TRG-511"].redshift
+    assert line["observed_wavelength_angstrom"] == pytest.approx(5006.84 * (1 + z))
+    img = gal.truth.components["object"].astype(float)
+    xl = gal.truth.line_x_px(line["observed_wavelength_angstrom"])
+    x0 = int(round(xl[104]))
+    cont = 0.5 * (img[:, x0 - 14:x0 - 9].mean(axis=1) + img[:, x0 + 10:x0 + 15].mean(axis=1))
+    net = img[:, x0 - 8:x0 + 9] - cont[:, None]
+    assert net.sum() == pytest.approx(line["electrons_in_frame"], rel=0.03)
+    # rotation: the line centre moves along the slit by ~ +-2 v_max/c in wavelength
+    cx = (net * np.arange(x0 - 8, x0 + 9)).sum(axis=1) / net.sum(axis=1)
+    disp = np.gradient(gal.truth.wavelength_map()[104])[x0]
+    dv = (cx[118] - cx[90]) * disp / line["observed_wavelength_angstrom"] * 299792.458
+    assert 60 < dv < 240
+
+
+# ----------------------------------------------------------------------------- shipped observer tables
+def test_extinction_table_matches_model_and_has_a_published_shape():
+    t = Table.read(REPO / "demo_data" / "tarn_ridge_extinction.ecsv")
+    lam = np.asarray(t["wavelength_angstrom"], float)
+    k = np.asarray(t["extinction_mag_per_airmass"], float)
+    np.testing.assert_allclose(k, src.extinction_mag_per_airmass(lam), atol=5e-4)
+    ref = _ref_rows("extinction_curve.csv")
+    rl = np.array([float(r["wavelength_angstrom"]) for r in ref])
+    rk = np.array([float(r["extinction_mag_per_airmass"]) for r in ref])
+    # a different site (La Silla, TUG77), so only the shape is compared, loosely:
+    sel = (rl >= 3300) & (rl <= 8200)
+    ours = np.interp(rl[sel], lam, k)
+    ratio = ours / rk[sel]
+    assert np.all((ratio > 0.7) & (ratio < 2.6)), ratio
+    assert np.corrcoef(np.log(ours), np.log(rk[sel]))[0, 1] > 0.98
+    # the blue (Rayleigh-dominated) log-log slope between 3500 and 5000 A
+    def slope(k_3500_5000):
+        return np.log(k_3500_5000[0] / k_3500_5000[1]) / np.log(5000 / 3500)
+    ref_slope = slope(np.interp([3500, 5000], rl, rk))
+    our_slope = slope(np.interp([3500, 5000], lam, k))
+    assert our_slope == pytest.approx(ref_slope, rel=0.25)
+    assert np.all(np.diff(k[lam <= 5000]) < 0)
+
+
+def test_standard_table_holds_bin_averages_of_the_star():
+    t = Table.read(REPO / "demo_data" / "standards" / "TRS-17.ecsv")
+    assert t.colnames == ["wavelength_angstrom", "flux_erg_s_cm2_angstrom", "bin_width_angstrom"]
+    assert str(t["flux_erg_s_cm2_angstrom"].unit) == "erg / (Angstrom s cm2)"
+    for i in (10, 333, 600, 1100):
+        c, w = t["wavelength_angstrom"][i], t["bin_width_angstrom"][i]
+        mean = quad(src.standard_star_flux, c - w / 2, c + w / 2)[0] / w
+        assert t["flux_erg_s_cm2_angstrom"][i] == pytest.approx(mean, rel=1e-5)
+    # H beta absorption visible in the table: the core is below the neighbouring continuum
+    f = np.interp([4700, 4861, 5020], t["wavelength_angstrom"], t["flux_erg_s_cm2_angstrom"])
+    assert f[1] < 0.7 * 0.5 * (f[0] + f[2])
+
+
+# ----------------------------------------------------------------------------- files and headers
+KEYWORDS = {"IMAGETYP": str, "OBJECT": str, "DATE-OBS": str, "GRATING": str, "GRTILT": float,
+            "SLITWID": float, "CCDSUM": str, "FILTER": str, "LAMPS": str, "GAIN": float,
+            "RDNOISE": float, "DATASEC": str, "BIASSEC": str, "TELESCOP": str, "INSTRUME": str,
+            "OBSERVAT": str}
+
+
+def test_frames_are_valid_fits_with_documented_headers(night_dir, index):
+    files = sorted(night_dir.glob("*.fits"))
+    assert 20 <= len(files) <= 30
+    types = {}
+    for path in files:
+        entry = index["frames"][path.stem]
+        if entry["defect"] in ("truncated", "not_fits"):
+            with pytest.raises(Exception):
+                with fits.open(path) as hdul:
+                    hdul.verify("exception")
+                    _ = hdul[0].data.sum()
+            continue
+        with fits.open(path) as hdul:
+            hdul.verify("exception")
+            h, data = hdul[0].header, hdul[0].data
+            assert len(hdul) == 1 and data.dtype == np.uint16 and h["BZERO"] == 32768
+            for key, typ in KEYWORDS.items():
+                assert isinstance(h[key], typ), f"{path.name}: {key}"
+            assert h["IMAGETYP"] in {"BIAS", "FLAT", "ARC", "STANDARD", "OBJECT", "FOCUS"}
+            assert data.shape == (1024, 288) and h["CCDSUM"] == "2 2"
+            assert h["DATASEC"] == "[1:256,1:1024]" and h["BIASSEC"] == "[257:288,1:1024]"
+            if entry["defect"] == "no_exptime":
+                assert "EXPTIME" not in h
+            else:
+                assert h["EXPTIME"] >= 0
+            if h["IMAGETYP"] in ("STANDARD", "OBJECT"):
+                assert 1.0 <= h["AIRMASS"] < 2.0
+                assert isinstance(h["RA"], float) and isinstance(h["DEC"], float)
+            if h["IMAGETYP"] == "ARC":
+                assert h["LAMPS"] in ("HgAr,Ne", "Ne,He,Ar")
+            np.datetime64(h["DATE-OBS"])   # ISO 8601
+            types.setdefault(h["IMAGETYP"], set()).add((h["GRTILT"], h["FILTER"]))
+    assert types["FLAT"] == {(8.93, "NONE"), (11.83, "GG495")}
+    assert types["ARC"] == {(8.93, "NONE"), (11.83, "GG495")}
+    assert "FOCUS" in types
+    statuses = {e["expected_pipeline_status"] for e in index["frames"].values()}
+    assert statuses == {"ok", "ignored", "rejected"}
+
+
+def test_truth_files_are_complete(night_dir, index):
+    truth = night_dir / "truth"
+    for entry in index["frames"].values():
+        for key in ("lines", "trace", "model"):
+            if key in entry:
+                assert (truth / entry[key]).exists()
+    cr = Table.read(truth / "cosmic_rays.ecsv")
+    assert len(cr) > 100 and set(cr.colnames) == {"frame_id", "y_px", "x_px", "electrons"}
+    assert index["noise_model"]["gain_e_per_adu"] != index["instrument"]["detector"]["gain_nominal_header"]
+    trace = Table.read(truth / index["frames"]["rls_0016"]["trace"])
+    assert len(trace) == 1024 and np.all(trace["object_electrons"] > 0)
+    for name in ("TRS-17", "TRG-511", "TRV-9"):
+        spec = Table.read(truth / index["targets"][name]["spectrum"])
+        assert np.all(spec["flux_erg_s_cm2_angstrom"] > 0)
+
+
+def test_deterministic_by_seed(night_dir, inst):
+    again = sim.make_night(None, frames=["rls_0013", "rls_0016"])
+    for fid in ("rls_0013", "rls_0016"):
+        on_disk = fits.getdata(night_dir / f"{fid}.fits")
+        np.testing.assert_array_equal(again.frames[fid].raw, on_disk)
+    other = sim.make_night(None, frames=["rls_0013"], seed=sim.DEFAULT_SEED + 1)
+    assert np.any(other.frames["rls_0013"].raw != again.frames["rls_0013"].raw)
+
+
+def test_bad_arguments_are_named(inst):
+    with pytest.raises(ValueError, match="lamps"):
+        sim.make_arc(inst, 8.93, lamps="HgAr,Kr")
+    with pytest.raises(ValueError, match="size"):
+        sim.make_instrument("huge")
+    with pytest.raises(ValueError, match="frames"):
+        sim.make_night(None, frames=["rls_9999"])
+    with pytest.raises(TypeError, match="tilt_eror"):
+        sim.make_instrument(tilt_eror=0.1)
+
+
+def test_simulator_never_imports_the_pipeline():
+    for path in (REPO / "demo_data").glob("*.py"):
+        tree = ast.parse(path.read_text())
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                names = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom):
+                names = [node.module or ""]
+            else:
+                continue
+            assert not any(n == "pipeline" or n.startswith("pipeline.") for n in names), path
+
+
+# ----------------------------------------------------------------------------- pictures
+def _save_png(data, path, title, vmin, vmax):
+    import matplotlib
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+    fig, ax = plt.subplots(figsize=(4.5, 9))
+    ax.imshow(data, origin="lower", cmap="gray", vmin=vmin, vmax=vmax, aspect="auto",
+              interpolation="nearest")
+    ax.set_title(title, fontsize=9)
+    ax.set_xlabel("raw column (slit, then overscan)")
+    ax.set_ylabel("raw row (dispersion; wavelength decreases upwards)")
+    fig.tight_layout()
+    fig.savefig(path, dpi=80)
+    plt.close(fig)
+
+
+def test_frames_look_like_long_slit_frames(night_dir, index):
+    """Write PNGs of an arc, a flat and a science frame and check what they must show."""
+    PNG_DIR.mkdir(exist_ok=True)
+    arc = fits.getdata(night_dir / "rls_0013.fits").astype(float)
+    flat = fits.getdata(night_dir / "rls_0006.fits").astype(float)
+    sci = fits.getdata(night_dir / "rls_0022.fits").astype(float)
+    _save_png(arc, PNG_DIR / "arc_rls_0013.png", "ARC HgAr,Ne (rls_0013)", 1000, 4000)
+    _save_png(flat, PNG_DIR / "flat_rls_0006.png", "FLAT (rls_0006)", 1000, 22000)
+    _save_png(sci, PNG_DIR / "science_rls_0022.png", "OBJECT TRG-511 (rls_0022)", 1000, 1120)
+    for name in ("arc_rls_0013", "flat_rls_0006", "science_rls_0022"):
+        assert (PNG_DIR / f"{name}.png").stat().st_size > 10000
+    # overscan at the bias level in every frame; unilluminated slit ends are dark
+    for img in (arc, flat, sci):
+        assert 990 < np.median(img[:, 256:]) < 1015
+    assert np.median(flat[:, 0:4]) < 1020 and np.median(flat[:, 100:150]) > 5000
+    # flat: the dead column (unbinned slit row 141 -> binned 70) is deficient
+    assert np.median(flat[:, 70]) - 1000 < 0.7 * (np.median(flat[:, 72]) - 1000)
+    # science: sky lines fill the slit; [O I] 5577 in every illuminated row
+    wmap = fits.getdata(night_dir / "truth" / index["setups"]["G600_t11.83_GG495"]["wavelength_map"])
+    r = 1023 - int(np.argmin(np.abs(wmap[128] - 6300.304)))   # raw row of [O I] 6300 (ASDq)
+    line_rows = sci[r - 1:r + 2, 8:248].max(axis=0) - np.median(sci[r + 8:r + 12, 8:248], axis=0)
+    assert np.all(line_rows > 20)
+    # the galaxy trace at its truth position along the slit
+    prof = trim_mean(sci[100:900, :256], 0.2, axis=0) - np.median(sci[:, 256:])
+    trace = Table.read(night_dir / "truth" / index["frames"]["rls_0022"]["trace"])
+    prof[[70, 114, 188]] = np.nan      # dead, low and hot columns (truth: index.json detector)
+    assert abs(np.nanargmax(prof[20:240]) + 20 - np.median(trace["trace_y_px"])) <= 2
+    # cosmic rays: isolated high pixels exist
+    assert np.count_nonzero(sci[:, :256] > 1300) > 50
