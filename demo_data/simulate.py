@@ -954,8 +954,15 @@ def _write_ecsv(table_dict, path, meta=None):
     t.write(path, format="ascii.ecsv", overwrite=True)
 
 
-def write_truth(night, truth_dir):
-    """Write the truth of a night (format in demo_data/README.md)."""
+def write_truth(night, truth_dir, *, models=None):
+    """Write the truth of a night (format in demo_data/README.md).
+
+    ``models``: write the noise-free ``model_<frame>.fits`` images of standards and
+    science frames (default: only for the small night; at full size they would
+    take about 130 MB per frame).
+    """
+    if models is None:
+        models = night.instrument.size == "small"
     from . import observer_tables
     truth_dir = Path(truth_dir)
     truth_dir.mkdir(parents=True, exist_ok=True)
@@ -1062,11 +1069,12 @@ def write_truth(night, truth_dir):
                                     "trace, noise-free object electrons summed along the slit, sky "
                                     "electrons per pixel at the trace"})
             entry["trace"] = f"trace_{fid}.ecsv"
-            hdus = [fits.PrimaryHDU()]
-            for cname, arr in tr.components.items():
-                hdus.append(fits.ImageHDU(arr, name=cname.upper()))
-            fits.HDUList(hdus).writeto(truth_dir / f"model_{fid}.fits", overwrite=True)
-            entry["model"] = f"model_{fid}.fits"
+            if models:
+                hdus = [fits.PrimaryHDU()]
+                for cname, arr in tr.components.items():
+                    hdus.append(fits.ImageHDU(arr, name=cname.upper()))
+                fits.HDUList(hdus).writeto(truth_dir / f"model_{fid}.fits", overwrite=True)
+                entry["model"] = f"model_{fid}.fits"
             if tr.info.get("galaxy_lines"):
                 entry["galaxy_lines"] = tr.info["galaxy_lines"]
                 entry["redshift"] = tr.info["redshift"]
