@@ -13,10 +13,12 @@ import gzip
 import math
 import os
 import re
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 
 from astropy.io import fits
+from astropy.utils.exceptions import AstropyUserWarning
 
 from .errors import InputFileError
 
@@ -196,11 +198,16 @@ def read_raw_header(path, *, extension=0, check_size=True):
     ------
     InputFileError
         When the file is not FITS, is truncated, lacks the extension or its
-        pixels are not a 2-D image.
+        pixels are not a 2-D image. For a truncated file the error's
+        ``header`` attribute holds the (complete) header that was read.
     """
     path = Path(path)
     try:
-        with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+        with warnings.catch_warnings():
+            # astropy warns about short files itself; the size check below says it once
+            warnings.simplefilter("ignore", AstropyUserWarning)
+            hdul = fits.open(path, memmap=False, lazy_load_hdus=True)
+        with hdul:
             try:
                 index, hdu = _hdu_by_name_or_index(hdul, extension)
             except (KeyError, IndexError):
@@ -213,24 +220,25 @@ def read_raw_header(path, *, extension=0, check_size=True):
     except InputFileError:
         raise
     except Exception as exc:  # astropy raises OSError, ValueError, TypeError... on junk
+        detail = str(exc).split(". ")[0].splitlines()[0] if str(exc) else "no detail"
         raise InputFileError(path, f"not a readable FITS file ({type(exc).__name__}: "
-                             f"{str(exc).splitlines()[0] if str(exc) else 'no detail'}); "
-                             "expected a FITS image") from None
+                             f"{detail}); expected a FITS image") from None
     if header.get("NAXIS", 0) != 2:
         raise InputFileError(path, f"HDU {extension!r}: NAXIS = {header.get('NAXIS')}; "
                              "expected a 2-D image")
+    combined = combined_header(primary, header)
+    needed = int(info["datLoc"]) + abs(int(header["BITPIX"])) // 8 * int(header["NAXIS1"]) \
+        * int(header["NAXIS2"])
+    truncated_error = None
     if check_size:
-        nbytes = abs(int(header["BITPIX"])) // 8 * int(header["NAXIS1"]) * int(header["NAXIS2"])
-        needed = int(info["datLoc"]) + nbytes
-        if path.suffix.lower() == ".gz":
-            actual = _gzip_length(path)
-        else:
-            actual = os.path.getsize(path)
+        actual = _gzip_length(path) if path.suffix.lower() == ".gz" else os.path.getsize(path)
         if actual < needed:
-            raise InputFileError(path, f"truncated: {actual} bytes but the header of HDU "
-                                 f"{extension!r} needs {needed}; expected a complete file "
-                                 "(copy it again from the telescope)")
-    return combined_header(primary, header)
+            truncated_error = InputFileError(
+                path, f"truncated: {actual} bytes but the header of HDU {extension!r} needs "
+                f"{needed}; expected a complete file (copy it again from the telescope)")
+            truncated_error.header = combined
+            raise truncated_error
+    return combined
 
 
 def raw_shape(header):

@@ -348,10 +348,14 @@ def _read_record(path, frame_id, instrument):
     base = dict(frame_id=frame_id, path=str(path), frame_type="unknown", setup="", readout="",
                 object="", exptime_s=math.nan, date_obs="", mjd=math.nan, status="ok",
                 reason="")
+    truncated = None
     try:
         header = hdr.read_raw_header(path, extension=instrument.get("pixel_extension", 0))
     except InputFileError as exc:
-        return FrameRecord(**{**base, "status": "rejected", "reason": exc.problem})
+        header = getattr(exc, "header", None)
+        if header is None:
+            return FrameRecord(**{**base, "status": "rejected", "reason": exc.problem})
+        truncated = exc.problem   # header complete, pixels cut: classify, then reject
     shape = hdr.raw_shape(header)
     base["shape"] = shape
     try:
@@ -359,6 +363,10 @@ def _read_record(path, frame_id, instrument):
     except InputFileError as exc:
         return FrameRecord(**{**base, "status": "rejected", "reason": exc.problem})
     base["frame_type"] = frame_type
+    if truncated:
+        base["object"] = hdr.header_str(header, kw.get("object"), default="")
+        base["date_obs"] = hdr.header_str(header, kw.get("date_obs"), default="")
+        return FrameRecord(**{**base, "status": "rejected", "reason": truncated})
     base["object"] = hdr.header_str(header, kw.get("object"), default="")
     base["date_obs"] = hdr.header_str(header, kw.get("date_obs"), default="")
     base["lamps"] = hdr.header_str(header, kw.get("lamps"), default="")

@@ -1,0 +1,98 @@
+# Night log and CCD calibration (pipeline/inventory.py, pipeline/ccd.py): master bias per
+# readout mode, master flat per setup, and calibrated arcs, standards and science frames.
+# Each rule's params hold exactly the config values its step reads, so changing a flat
+# option reruns the flats and what follows, not the biases.
+
+_CCD_INSTRUMENT_KEYS = ("pixel_extension", "sections", "gain_e_per_adu", "read_noise_e",
+                        "saturation_adu", "dispersion_axis", "wavelength_increases_with_pixel")
+
+
+def ccd_instrument():
+    """The part of the instrument description the CCD steps read."""
+    ccd = {key: INSTRUMENT.get(key) for key in _CCD_INSTRUMENT_KEYS}
+    ccd["pixel_extension"] = INSTRUMENT.get("pixel_extension", 0)
+    ccd["binning_keyword"] = INSTRUMENT.get("keywords", {}).get("binning")
+    return ccd
+
+
+def master_bias_path(readout):
+    return out("calibrations", f"master_bias_{readout}.fits")
+
+
+def master_flat_path(setup):
+    return out("calibrations", f"master_flat_{setup}.fits")
+
+
+def _frame_calibrations(wildcards):
+    rec = NIGHT.record(wildcards.frame)
+    return {"raw": rec.path, "bias": master_bias_path(NIGHT.bias_for(rec.frame_id)),
+            "flat": master_flat_path(rec.setup)}
+
+
+rule night_log:
+    input:
+        raw_frames=[rec.path for rec in NIGHT.records],
+    output:
+        night_log=out("night_log.ecsv"),
+    params:
+        raw_dir=str(RAW),
+        instrument=INSTRUMENT,
+    log:
+        log_path("night_log", "night_log"),
+    script:
+        RUN_STEP
+
+
+rule master_bias:
+    input:
+        frames=lambda wc: [rec.path for rec in NIGHT.frames("bias") if rec.readout == wc.readout],
+    output:
+        master=out("calibrations", "master_bias_{readout}.fits"),
+        qa=out("calibrations", "master_bias_{readout}_qa.ecsv"),
+    wildcard_constraints:
+        readout=r"[A-Za-z0-9.-]+(_[A-Za-z0-9.-]+)*",
+    params:
+        instrument=ccd_instrument(),
+        overscan=config.get("overscan", {}),
+        bias=config.get("bias", {}),
+    log:
+        log_path("master_bias", "{readout}"),
+    script:
+        RUN_STEP
+
+
+rule master_flat:
+    input:
+        frames=lambda wc: [rec.path for rec in NIGHT.flats_for(wc.setup)],
+        bias=lambda wc: master_bias_path(NIGHT.setup_readout(wc.setup)),
+    output:
+        master=out("calibrations", "master_flat_{setup}.fits"),
+        qa=out("calibrations", "master_flat_{setup}_qa.ecsv"),
+    wildcard_constraints:
+        setup=r"[A-Za-z0-9._-]+",
+    params:
+        instrument=ccd_instrument(),
+        overscan=config.get("overscan", {}),
+        flat=config.get("flat", {}),
+    log:
+        log_path("master_flat", "{setup}"),
+    script:
+        RUN_STEP
+
+
+rule calibrate_frame:
+    input:
+        unpack(_frame_calibrations),
+    output:
+        calibrated=out("calibrated", "{frame}.fits"),
+    wildcard_constraints:
+        frame=r"[A-Za-z0-9._-]+",
+    params:
+        frame_type=lambda wc: NIGHT.record(wc.frame).frame_type,
+        instrument=ccd_instrument(),
+        overscan=config.get("overscan", {}),
+        calibration=config.get("calibration", {}),
+    log:
+        log_path("calibrate_frame", "{frame}"),
+    script:
+        RUN_STEP
