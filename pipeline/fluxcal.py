@@ -380,6 +380,48 @@ def exclusion_mask(wave_angstrom, regions):
     return out
 
 
+def gaussian_slit_fraction(wave_angstrom, *, fwhm_arcsec, reference_wave_angstrom,
+                           slit_width_arcsec, seeing_exponent=-0.2):
+    """Fraction of a centred Gaussian star image that passes a slit.
+
+    Parameters
+    ----------
+    wave_angstrom : array_like, Angstrom
+    fwhm_arcsec : float, arcsec
+        Image FWHM at ``reference_wave_angstrom`` (e.g. the spatial FWHM of the
+        extracted profile along the slit).
+    reference_wave_angstrom : float, Angstrom
+    slit_width_arcsec : float, arcsec
+    seeing_exponent : float
+        FWHM scales as ``(lambda / lambda_ref) ** seeing_exponent``; -0.2 is
+        the Kolmogorov value (common practice; from memory).
+
+    Returns
+    -------
+    ndarray, same shape as ``wave_angstrom``
+        ``erf(w / (2 sqrt(2) sigma(lambda)))``.
+
+    Notes
+    -----
+    A model: real images have wings (Moffat-like), and a star off the slit
+    centre loses more. Used only when ``slit_loss_correction`` is on.
+
+    Examples
+    --------
+    >>> round(float(gaussian_slit_fraction(5000.0, fwhm_arcsec=1.0,
+    ...     reference_wave_angstrom=5000.0, slit_width_arcsec=1.0)), 4)
+    0.761
+    """
+    from scipy.special import erf
+
+    fwhm = _positive(fwhm_arcsec, "fwhm_arcsec")
+    ref = _positive(reference_wave_angstrom, "reference_wave_angstrom")
+    width = _positive(slit_width_arcsec, "slit_width_arcsec")
+    wave = np.asarray(wave_angstrom, dtype=float)
+    sigma = fwhm * (wave / ref) ** float(seeing_exponent) / (2.0 * math.sqrt(2.0 * math.log(2.0)))
+    return erf(width / (2.0 * math.sqrt(2.0) * sigma))
+
+
 # ----------------------------------------------------------------------------
 # sensitivity: measurement and fit
 # ----------------------------------------------------------------------------
@@ -418,7 +460,7 @@ class SensitivityPoints:
 
 def measure_sensitivity(wave_angstrom, counts_e, variance_e2, mask=None, *, exptime_s, airmass,
                         flux_table, extinction=None, exclude_regions=(),
-                        error_floor_mag=0.002, info=None):
+                        error_floor_mag=0.002, slit_fraction=None, info=None):
     """Sensitivity of every pixel of a standard-star spectrum.
 
     Parameters
@@ -442,6 +484,10 @@ def measure_sensitivity(wave_angstrom, counts_e, variance_e2, mask=None, *, expt
         Added in quadrature to the noise of each point, so that the highest
         signal-to-noise pixels do not dominate a fit whose limit is the flux
         table's accuracy (common practice; default 0.2 %).
+    slit_fraction : array_like, shape (n,), optional
+        Fraction of the star's light that entered the slit (see
+        :func:`gaussian_slit_fraction`). Given, the sensitivity refers to light
+        entering the slit; None (default), it includes the standard's slit loss.
 
     Returns
     -------
@@ -473,6 +519,9 @@ def measure_sensitivity(wave_angstrom, counts_e, variance_e2, mask=None, *, expt
     trans = transmission(k, airmass)
     with np.errstate(invalid="ignore", divide="ignore"):
         rate = counts / (exptime_s * dwave)
+        if slit_fraction is not None:
+            trans = trans * _same_shape(np.asarray(slit_fraction, dtype=float), wave,
+                                        "slit_fraction", "wave_angstrom")
         sens = rate / (table_flux * trans)
         usable = (np.isfinite(sens) & (sens > 0) & (mask == 0) & np.isfinite(var) & (var > 0)
                   & np.isfinite(table_flux))
@@ -812,7 +861,8 @@ class CalibratedSpectrum:
 
 
 def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, exptime_s, airmass,
-                       sensitivity, extinction=None, include_sensitivity_error=False):
+                       sensitivity, extinction=None, include_sensitivity_error=False,
+                       slit_fraction=None):
     """Turn extracted electrons into flux density above the atmosphere.
 
     Parameters
@@ -831,6 +881,11 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     include_sensitivity_error : bool
         Add the sensitivity's fit variance to ``variance`` (it is always
         available separately as ``calibration_variance``).
+    slit_fraction : array_like, shape (n,), optional
+        Fraction of a point source's light that entered the slit; given, the
+        flux is divided by it (total flux of the point source). Leave None for
+        extended sources (flux through the slit) or when the sensitivity
+        includes the standard's slit loss.
 
     Returns
     -------
@@ -863,6 +918,9 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     k = (np.zeros_like(wave) if extinction is None
          else extinction_at(extinction, wave, outside="hold"))
     conversion = exptime_s * dwave * sens * transmission(k, airmass)
+    if slit_fraction is not None:
+        conversion = conversion * _same_shape(np.asarray(slit_fraction, dtype=float), wave,
+                                              "slit_fraction", "wave_angstrom")
     covered = np.isfinite(conversion) & (conversion > 0)
     finite = np.isfinite(counts) & np.isfinite(var)
     mask[~covered] |= maskbits.MASK_DTYPE(MaskBit.NO_COVERAGE)
@@ -1413,6 +1471,30 @@ def _signal_to_noise(spec):
     return float(np.median(spec.values[good] / np.sqrt(spec.variance[good])))
 
 
+def _profile_fwhm_arcsec(spec, spatial_scale_arcsec_per_px):
+    """(FWHM in arcsec, reference wavelength) of an extracted profile from its header
+    (APFWHMPX rows x BINSPAT x unbinned scale, at APREFWL); raises InputFileError."""
+    header, path = spec.header, spec.path
+    fwhm_px = _header_float(header, "APFWHMPX", path)
+    binning = _header_float(header, "BINSPAT", path, required=False)
+    binning = binning if math.isfinite(binning) and binning > 0 else 1.0
+    ref = _header_float(header, "APREFWL", path, required=False)
+    if not math.isfinite(ref):
+        ref = float(np.median(spec.wave_angstrom))
+    if spatial_scale_arcsec_per_px is None:
+        raise ValueError("`spatial_scale_arcsec_per_px` is needed for the slit-loss correction")
+    return fwhm_px * binning * float(spatial_scale_arcsec_per_px), ref
+
+
+def _slit_fraction_of(spec, *, spatial_scale_arcsec_per_px, seeing_exponent):
+    fwhm, ref = _profile_fwhm_arcsec(spec, spatial_scale_arcsec_per_px)
+    width = _header_float(spec.header, "SLITWID", spec.path)
+    frac = gaussian_slit_fraction(spec.wave_angstrom, fwhm_arcsec=fwhm,
+                                  reference_wave_angstrom=ref, slit_width_arcsec=width,
+                                  seeing_exponent=seeing_exponent)
+    return frac, fwhm, ref
+
+
 def _qa_table(rows, meta):
     from astropy.table import Table
 
@@ -1436,7 +1518,8 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                          extinction_table=None, setup="", fit_kind="spline",
                          knot_spacing_angstrom=250.0, degree=3, clip_sigma=3.0,
                          max_iterations=5, exclude_regions=(), error_floor_mag=0.002,
-                         max_extrapolation_angstrom=150.0, site=None):
+                         max_extrapolation_angstrom=150.0, slit_loss_correction=False,
+                         spatial_scale_arcsec_per_px=None, seeing_exponent=-0.2, site=None):
     """Adapter of rule ``fit_sensitivity``: one sensitivity per setup.
 
     Parameters
@@ -1456,6 +1539,15 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         See :func:`fit_sensitivity`.
     exclude_regions, error_floor_mag
         See :func:`measure_sensitivity`.
+    slit_loss_correction : bool
+        Divide the standard's counts by its modelled slit fraction
+        (:func:`gaussian_slit_fraction` from the header's APFWHMPX, BINSPAT,
+        APREFWL and SLITWID), so that the sensitivity refers to light entering
+        the slit; recorded as ``SLITCORR``/``STDFWHM`` for the science step.
+    spatial_scale_arcsec_per_px : float, arcsec
+        Unbinned pixel scale along the slit (for the slit-loss correction).
+    seeing_exponent : float
+        FWHM proportional to lambda**seeing_exponent.
     site : dict, optional
         ``latitude_deg``, ``longitude_deg``, ``height_m`` for spectra without AIRMASS.
 
@@ -1477,7 +1569,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                          f"{len(dirs)} directories, {len(tables)} tables")
     regions = _regions(exclude_regions)
     extinction = _load_extinction(extinction_table)
-    points, rows, used_names, inputs, problems = [], [], [], [], []
+    points, rows, used_names, inputs, problems, fwhms = [], [], [], [], [], []
     for directory, table_path in zip(dirs, tables):
         frame = Path(directory).name
         row = dict(setup=setup, frame=frame, flux_table=Path(table_path).name)
@@ -1502,11 +1594,20 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                               FluxCalibrationWarning, stacklevel=2)
             airmass, how = spectrum_airmass(spec, site=site)
             exptime = _header_float(spec.header, "EXPTIME", spec.path)
+            frac, details = None, {}
+            if slit_loss_correction:
+                frac, fwhm, ref = _slit_fraction_of(
+                    spec, spatial_scale_arcsec_per_px=spatial_scale_arcsec_per_px,
+                    seeing_exponent=seeing_exponent)
+                details = {"fwhm_arcsec": fwhm, "fwhm_reference_angstrom": ref,
+                           "slit_fraction_at_reference": float(np.interp(
+                               ref, spec.wave_angstrom, frac))}
+                fwhms.append(fwhm)
             p = measure_sensitivity(
                 spec.wave_angstrom, spec.values, spec.variance, spec.mask, exptime_s=exptime,
                 airmass=airmass, flux_table=table, extinction=extinction,
-                exclude_regions=regions, error_floor_mag=error_floor_mag,
-                info={"frame": frame, "object": obj, "path": spec.path})
+                exclude_regions=regions, error_floor_mag=error_floor_mag, slit_fraction=frac,
+                info={"frame": frame, "object": obj, "path": spec.path, **details})
             if p.for_fit.sum() == 0:
                 raise FluxCalibrationError(f"{spec.path}: no pixel of the spectrum is usable and "
                                            f"covered by the flux table {table.source}")
@@ -1537,6 +1638,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         reason = ("no usable standard-star spectrum: " + "; ".join(problems)) if problems else \
             "no standard-star spectrum given"
     meta = dict(setup=setup, fit_kind=fit_kind, degree=int(degree),
+                slit_loss_correction=bool(slit_loss_correction),
                 knot_spacing_angstrom=float(knot_spacing_angstrom), clip_sigma=float(clip_sigma),
                 exclude_regions_angstrom=[list(r) for r in regions],
                 extinction_table=(extinction.source if extinction is not None else "none"),
@@ -1570,7 +1672,12 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
     write_sensitivity(sensitivity, fit, points, setup=setup, standards=used_names,
                       inputs=inputs,
                       header_extra={"EXTTAB": ((extinction.source if extinction else "none"),
-                                               "extinction table")})
+                                               "extinction table"),
+                                    "SLITCORR": (bool(slit_loss_correction),
+                                                 "sensitivity corrected for slit loss"),
+                                    **({"STDFWHM": (float(np.mean(fwhms)),
+                                                    "[arcsec] standard's profile FWHM")}
+                                       if fwhms else {})})
     _qa_table(rows, meta).write(qa_table, format="ascii.ecsv", overwrite=True)
     qa_flux.plot_sensitivity(fit, points, qa_plot, exclude_regions=regions,
                              title=f"sensitivity {setup} from {', '.join(used_names)}")
@@ -1593,7 +1700,8 @@ def _write_listing(path, rows, meta):
 
 def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                         extinction_table=None, setup="", uncalibrated_reason="",
-                        include_sensitivity_error=False, site=None):
+                        include_sensitivity_error=False, spatial_scale_arcsec_per_px=None,
+                        seeing_exponent=-0.2, extended_fwhm_ratio=1.5, site=None):
     """Adapter of rule ``flux_calibrate``: calibrate every spectrum of one frame.
 
     Parameters
@@ -1615,6 +1723,13 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
     include_sensitivity_error : bool
         Add the sensitivity's fit variance to each pixel's variance (it is
         always written separately in the CALVAR HDU).
+    spatial_scale_arcsec_per_px, seeing_exponent : float
+        For the slit-loss correction, applied only when the sensitivity was
+        corrected (``SLITCORR``): a spectrum whose profile FWHM is at most
+        ``extended_fwhm_ratio`` times the standard's is taken as a point
+        source and divided by its modelled slit fraction (total flux); a wider
+        one as extended (flux through the slit, no correction).
+    extended_fwhm_ratio : float
     site : dict, optional
 
     Notes
@@ -1654,16 +1769,30 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                                   FluxCalibrationWarning, stacklevel=2)
                 airmass, how = spectrum_airmass(spec, site=site)
                 exptime = _header_float(spec.header, "EXPTIME", spec.path)
+                frac, slit_note = None, ("none", "sensitivity includes the standard's slit loss")
+                if sens_header.get("SLITCORR", False):
+                    f_obj, fwhm, ref = _slit_fraction_of(
+                        spec, spatial_scale_arcsec_per_px=spatial_scale_arcsec_per_px,
+                        seeing_exponent=seeing_exponent)
+                    if fwhm <= extended_fwhm_ratio * float(sens_header["STDFWHM"]):
+                        frac = f_obj
+                        slit_note = ("point", f"total flux: slit fraction "
+                                     f"{float(np.interp(ref, spec.wave_angstrom, f_obj)):.3f}")
+                    else:
+                        slit_note = ("extended", f"flux through the slit (FWHM {fwhm:.2f} "
+                                     "arcsec)")
                 cal = calibrate_spectrum(spec.wave_angstrom, spec.values, spec.variance,
                                          spec.mask, exptime_s=exptime, airmass=airmass,
                                          sensitivity=fit, extinction=extinction,
-                                         include_sensitivity_error=include_sensitivity_error)
+                                         include_sensitivity_error=include_sensitivity_error,
+                                         slit_fraction=frac)
                 target = out_dir / Path(path).name
                 extra = {
                     "FLUXCAL": (True, "flux calibrated"),
                     "SENSFILE": (Path(sens_paths[0]).name, "sensitivity product used"),
                     "AIRMUSED": (airmass, f"airmass used ({how})"),
                     "NEXTRAP": (cal.info["n_extrapolated"], "pixels with extrapolated sensitivity"),
+                    "SLITLOSS": (slit_note[0], slit_note[1]),
                     "EXTTAB": ((extinction.source if extinction else "none"),
                                "extinction table"),
                     "SENSERR": ("included" if include_sensitivity_error else "not in VAR",

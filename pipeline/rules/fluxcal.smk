@@ -74,6 +74,9 @@ rule fit_sensitivity:
         max_iterations=FLUXCAL.get("max_iterations", 5),
         error_floor_mag=FLUXCAL.get("error_floor_mag", 0.002),
         max_extrapolation_angstrom=FLUXCAL.get("max_extrapolation_angstrom", 150.0),
+        slit_loss_correction=FLUXCAL.get("slit_loss_correction", False),
+        spatial_scale_arcsec_per_px=INSTRUMENT["spatial_scale_arcsec_per_px"],
+        seeing_exponent=FLUXCAL.get("seeing_exponent", -0.2),
         exclude_regions=FLUXCAL.get("exclude_regions_angstrom", []),
         site=_FC_SITE,
     log:
@@ -97,6 +100,9 @@ rule flux_calibrate:
         setup=lambda wc: NIGHT.record(wc.frame).setup,
         uncalibrated_reason=lambda wc: fluxcal_missing_reason(NIGHT.record(wc.frame).setup),
         include_sensitivity_error=FLUXCAL.get("include_sensitivity_error", False),
+        spatial_scale_arcsec_per_px=INSTRUMENT["spatial_scale_arcsec_per_px"],
+        seeing_exponent=FLUXCAL.get("seeing_exponent", -0.2),
+        extended_fwhm_ratio=FLUXCAL.get("extended_fwhm_ratio", 1.5),
         site=_FC_SITE,
     log:
         log_path("flux_calibrate", "{frame}"),
