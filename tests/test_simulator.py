@@ -367,6 +367,7 @@ KEYWORDS = {"IMAGETYP": str, "OBJECT": str, "DATE-OBS": str, "GRATING": str, "GR
             "OBSERVAT": str}
 
 
+@pytest.mark.filterwarnings("ignore:File may have been truncated")
 def test_frames_are_valid_fits_with_documented_headers(night_dir, index):
     files = sorted(night_dir.glob("*.fits"))
     assert 20 <= len(files) <= 30
