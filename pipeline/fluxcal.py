@@ -33,9 +33,9 @@ Products
     ``MODEL`` (image, float64): the fitted coefficients; header ``SENSKIND``,
     ``SENSDEG`` and, for splines, the knots in the ``KNOTS`` image, for
     Chebyshev series the domain (``DOMAIN0``, ``DOMAIN1``). ``COVAR`` (image,
-    float64, n x n): covariance of the coefficients (mag^2). ``CURVE`` (table):
-    ``wavelength_angstrom``, ``sensitivity_mag``, ``sensitivity_mag_err``,
-    ``sensitivity`` (e- cm2 / erg) on a grid. ``POINTS`` (table): every
+    float64, n x n): covariance of the coefficients (mag^2). ``CURVE`` (HDU 1,
+    table; empty for a failed fit): ``wavelength_angstrom``, ``sensitivity_mag``,
+    ``sensitivity_mag_err``, ``sensitivity`` (e- cm2 / erg) on a grid. ``POINTS`` (table): every
     measured pixel with ``frame``, ``wavelength_angstrom``, ``sensitivity_mag``,
     ``sensitivity_mag_err``, ``used``, ``excluded``, ``rejected``.
     :func:`read_sensitivity` reads it back.
@@ -1345,6 +1345,22 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
         h[f"STD{i:02d}"] = (str(name), "standard star used")
     _set_cards(h, header_extra)
     hdus = [primary]
+    # HDU 1: the curve on a grid (empty for a failed fit), for tools that read a table
+    if fit is not None:
+        grid = np.linspace(fit.wave_min - fit.max_extrapolation_angstrom,
+                           fit.wave_max + fit.max_extrapolation_angstrom, 200)
+        curve = Table({"wavelength_angstrom": grid, "sensitivity_mag": fit.mag(grid),
+                       "sensitivity_mag_err": fit.mag_error(grid),
+                       "sensitivity": fit.sensitivity(grid)})
+    else:
+        curve = Table(names=("wavelength_angstrom", "sensitivity_mag", "sensitivity_mag_err",
+                             "sensitivity"), dtype=[float] * 4)
+    curve["sensitivity"].description = "S in electron cm2 / erg (see SENSUNIT)"
+    curve["wavelength_angstrom"].unit = "Angstrom"
+    curve["sensitivity_mag"].unit = "mag"
+    curve["sensitivity_mag_err"].unit = "mag"
+    hdus.append(fits.table_to_hdu(curve))
+    hdus[-1].name = "CURVE"
     if fit is not None:
         h["SENSKIND"] = (fit.kind, "fit of 2.5 log10 S: spline or chebyshev")
         h["SENSDEG"] = (fit.degree, "spline degree or Chebyshev order")
@@ -1366,17 +1382,6 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
         hdus.append(model)
         hdus.append(fits.ImageHDU(np.asarray(fit.knots, dtype=np.float64), name="KNOTS"))
         hdus.append(fits.ImageHDU(np.asarray(fit.covariance, dtype=np.float64), name="COVAR"))
-        grid = np.linspace(fit.wave_min - fit.max_extrapolation_angstrom,
-                           fit.wave_max + fit.max_extrapolation_angstrom, 512)
-        curve = Table({"wavelength_angstrom": grid, "sensitivity_mag": fit.mag(grid),
-                       "sensitivity_mag_err": fit.mag_error(grid),
-                       "sensitivity": fit.sensitivity(grid)})
-        curve["sensitivity"].description = "S in electron cm2 / erg (see SENSUNIT)"
-        curve["wavelength_angstrom"].unit = "Angstrom"
-        curve["sensitivity_mag"].unit = "mag"
-        curve["sensitivity_mag_err"].unit = "mag"
-        hdus.append(fits.table_to_hdu(curve))
-        hdus[-1].name = "CURVE"
         rows = []
         for i, p in enumerate(points):
             rejected = (fit.info["rejected"][i] if i < len(fit.info.get("rejected", ()))
