@@ -313,9 +313,16 @@ def _cumulative_linear(x_nodes, f_nodes, q):
 
 
 def _cumulative_step(lo, hi, f, q):
-    """Integral of a step function (value f on [lo, hi)) and covered length, up to q."""
-    covered = np.clip(q[:, None] - lo[None, :], 0.0, (hi - lo)[None, :])
-    return covered @ f, covered.sum(axis=1)
+    """Integral of a step function (value f on [lo, hi), bins sorted and not overlapping)
+    and the length covered by bins, from -inf up to each q."""
+    width = hi - lo
+    cum_int = np.concatenate([[0.0], np.cumsum(f * width)])
+    cum_len = np.concatenate([[0.0], np.cumsum(width)])
+    i = np.searchsorted(lo, q, side="right") - 1
+    j = np.clip(i, 0, lo.size - 1)
+    part = np.where(i >= 0, np.clip(q - lo[j], 0.0, width[j]), 0.0)
+    base = np.where(i >= 0, j, 0)
+    return cum_int[base] + f[j] * part, cum_len[base] + part
 
 
 def table_flux_in_pixels(table, edges_angstrom):
