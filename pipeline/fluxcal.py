@@ -1205,22 +1205,22 @@ def spectrum_airmass(spectrum, *, site=None):
 
 
 def _linear_wcs_cards(wave_angstrom):
-    """WCS cards for a wavelength array that is linear (or linear in log), else None."""
-    n = wave_angstrom.size
-    pix = np.arange(n)
-    for ctype, values in (("AWAV", wave_angstrom), ("AWAV-LOG", None)):
-        if ctype == "AWAV":
-            a, b = np.polyfit(pix, values, 1)
-            if np.max(np.abs(values - (a * pix + b))) <= 1e-6 * abs(a):
-                return {"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": b,
-                        "CDELT1": a}
-        else:
-            loga, logb = np.polyfit(pix, np.log(wave_angstrom), 1)
-            model = np.exp(logb + loga * pix)
-            if np.max(np.abs(wave_angstrom - model)) <= 1e-6 * np.min(np.diff(wave_angstrom)):
-                w0 = math.exp(logb)
-                return {"CTYPE1": "AWAV-LOG", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": w0,
-                        "CDELT1": w0 * loga}
+    """WCS cards for wavelengths linear in pixels ('AWAV') or in log ('AWAV-LOG'), else None.
+
+    Tolerance: 1e-6 of a pixel's width.
+    """
+    pix = np.arange(wave_angstrom.size)
+    tol = 1e-6 * float(np.min(np.diff(wave_angstrom)))
+    slope, start = np.polyfit(pix, wave_angstrom, 1)
+    if np.max(np.abs(wave_angstrom - (start + slope * pix))) <= tol:
+        return {"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": start,
+                "CDELT1": slope}
+    log_slope, log_start = np.polyfit(pix, np.log(wave_angstrom), 1)
+    if np.max(np.abs(wave_angstrom - np.exp(log_start + log_slope * pix))) <= tol:
+        # Greisen et al. 2006: -LOG axis, w = w0 exp(CDELT (p - CRPIX) / w0)
+        w0 = math.exp(log_start)
+        return {"CTYPE1": "AWAV-LOG", "CUNIT1": "Angstrom", "CRPIX1": 1.0, "CRVAL1": w0,
+                "CDELT1": w0 * log_slope}
     return None
 
 
@@ -1580,8 +1580,12 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         raise ValueError(f"`flux_tables` must name one table per standard spectra directory: "
                          f"{len(dirs)} directories, {len(tables)} tables")
     regions = _regions(exclude_regions)
-    extinction = _load_extinction(extinction_table)
     points, rows, used_names, inputs, problems, fwhms = [], [], [], [], [], []
+    try:
+        extinction = _load_extinction(extinction_table)
+    except InputFileError as exc:
+        extinction, dirs = None, []
+        problems.append(f"extinction table unusable: {exc}")
     for directory, table_path in zip(dirs, tables):
         frame = Path(directory).name
         row = dict(setup=setup, frame=frame, flux_table=Path(table_path).name)
@@ -1764,7 +1768,13 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                       f"{sens_header.get('REASON', 'no reason recorded')}")
     elif not reason:
         reason = f"no sensitivity for setup {setup}"
-    extinction = _load_extinction(extinction_table) if fit is not None else None
+    extinction = None
+    if fit is not None:
+        try:
+            extinction = _load_extinction(extinction_table)
+        except InputFileError as exc:
+            fit, reason = None, f"extinction table unusable: {exc}"
+            warnings.warn(reason, FluxCalibrationWarning, stacklevel=2)
     files = read_spectra_directory(spectra)
     rows, plotted = [], []
     for path, listed in files:

@@ -729,3 +729,41 @@ def test_adapters_apply_the_slit_loss_model_from_profile_widths(tmp_path, standa
     # galaxy is not
     i = np.argmin(np.abs(WAVE - 5000.0))
     assert galaxy[i] / star[i] == pytest.approx(0.7610, abs=2e-4)
+
+
+def test_fluxed_file_gets_a_wcs_when_the_input_header_has_none(tmp_path):
+    # log-linear wavelengths and a header without WCS: an AWAV-LOG axis (Greisen et al. 2006)
+    # must be written that specutils reads back to the same wavelengths
+    from specutils import Spectrum
+
+    wave = 4000.0 * np.exp(np.arange(300) * 2e-4)
+    spec = fc.ExtractedSpectrum(wave, np.ones(300), np.ones(300), np.zeros(300, np.uint8),
+                                fits.Header({"OBJECT": "X"}), "in.fits")
+    fit = fc.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
+                            np.array([3900.0, 7000.0]), 3900.0, 7000.0)
+    cal = fc.calibrate_spectrum(wave, spec.values, spec.variance, exptime_s=1.0, airmass=1.0,
+                                sensitivity=fit)
+    fc.write_fluxed_spectrum(tmp_path / "x.fits", spec, cal)
+    back = Spectrum.read(str(tmp_path / "x.fits"))
+    assert back.meta["header"]["CTYPE1"] == "AWAV-LOG"
+    assert_allclose(back.spectral_axis.to_value(u.AA), wave, rtol=1e-9)
+    curved = wave + 1e-3 * np.arange(300) ** 2  # neither linear nor log-linear
+    bad = fc.ExtractedSpectrum(curved, np.ones(300), np.ones(300), np.zeros(300, np.uint8),
+                               fits.Header(), "in.fits")
+    with pytest.raises(fc.FluxCalibrationError, match="neither linear nor log-linear"):
+        fc.write_fluxed_spectrum(tmp_path / "y.fits", bad, fc.CalibratedSpectrum(
+            curved, cal.flux, cal.variance, cal.mask, cal.calibration_variance))
+
+
+def test_unusable_extinction_table_leaves_the_night_going(night_files):
+    f = night_files
+    broken = f["tmp"] / "broken.ecsv"
+    broken.write_text("not a table\n")
+    out = f["tmp"] / "out"
+    with pytest.warns(FluxCalibrationWarning):
+        fit = fc.fit_sensitivity_file(
+            spectra=[str(f["std"])], flux_tables=[str(f["table"])],
+            sensitivity=str(out / "s.fits"), qa_table=str(out / "q.ecsv"),
+            qa_plot=str(out / "q.png"), extinction_table=str(broken), setup="A")
+    assert fit is None
+    assert "broken.ecsv" in fits.getheader(out / "s.fits")["REASON"]
