@@ -397,7 +397,11 @@ class _Noise:
 
 
 def _clip_columns(sub, *, sigma, maxiters, noise):
-    """Iterative sigma clipping of ``sub`` (n, k) about the median; mean of survivors."""
+    """Iterative sigma clipping of ``sub`` (n, k) about the median; mean of survivors.
+
+    The spread is the noise model's when given, else the MAD-based standard
+    deviation of the kept values (robust against several outliers).
+    """
     valid = np.isfinite(sub)
     keep = valid.copy()
     n = sub.shape[0]
@@ -406,8 +410,8 @@ def _clip_columns(sub, *, sigma, maxiters, noise):
             warnings.simplefilter("ignore", RuntimeWarning)
             masked = np.where(keep, sub, np.nan)
             center = np.nanmedian(masked, axis=0)
-            if noise is None:
-                spread = np.nanstd(masked, axis=0, ddof=1)[None, :]
+            if noise is None:   # robust spread: 1.4826 x median absolute deviation
+                spread = 1.4826 * np.nanmedian(np.abs(masked - center[None, :]), axis=0)[None, :]
             else:
                 spread = noise.sigma(center, n)
         new_keep = valid & (np.abs(sub - center[None, :]) <= sigma * spread)
@@ -468,6 +472,11 @@ def _clipped_mean(stack, *, sigma=3.0, maxiters=5, noise=None):
         dev = np.abs(stack - center)
         suspect = (dev > np.float32(sigma) * spread).any(axis=0) | ~finite
         del dev
+        if noise is None:
+            # a second outlier inflates the sample spread and hides itself: pixels whose
+            # spread is well above the block's typical one take the careful path too
+            typical = np.nanmedian(spread)
+            suspect |= spread[0] > 2.0 * typical
     mean = total / np.float32(n)
     n_used = np.full(mean.shape, n, dtype=np.int32)
     if suspect.any():
@@ -571,9 +580,9 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     frames divided by sqrt(2), after removing each row's median difference
     (overscan-level noise would otherwise add to it); fixed bias structure
     cancels in the difference. Each pair's variance is accumulated over all
-    blocks; the result is the median over pairs. Within each block the
-    clipping threshold is ``clip_sigma`` times the read noise measured on the
-    first pair in that block.
+    blocks; the result is the median over pairs. The clipping threshold is
+    ``clip_sigma`` times the read noise of the first pair, measured in a first
+    pass over those two frames, so the result does not depend on ``block_rows``.
 
     Examples
     --------
@@ -594,6 +603,23 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     pairs = [(i, i + 1) for i in range(0, n - 1, 2)][:max(int(max_read_noise_pairs), 0)]
     pair_ss = np.zeros(len(pairs))
     pair_count = np.zeros(len(pairs))
+
+    def accumulate(j, a_rows, b_rows):
+        std = _pair_difference_std(a_rows, b_rows) / math.sqrt(2)
+        if math.isfinite(std):
+            pair_ss[j] += std ** 2 * a_rows.size
+            pair_count[j] += a_rows.size
+
+    # pass 0: the first pair alone sets the clipping threshold, so the result does not
+    # depend on the block size (reads two frames, block by block)
+    noise = None
+    if pairs:
+        for r0 in range(0, shape[0], block):
+            r1 = min(r0 + block, shape[0])
+            accumulate(0, np.asarray(frames[0][r0:r1], np.float32),
+                       np.asarray(frames[1][r0:r1], np.float32))
+        if pair_count[0] > 0 and pair_ss[0] > 0:
+            noise = _Noise(math.sqrt(pair_ss[0] / pair_count[0]))
     out = np.empty(shape, dtype=np.float32)
     used = np.empty(shape, dtype=np.int32)
     stack = np.empty((n, min(block, shape[0]), shape[1]), dtype=np.float32)
@@ -602,15 +628,8 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
         s = stack[:, : r1 - r0]
         for i, f in enumerate(frames):
             s[i] = f[r0:r1]
-        rn_block = math.nan
-        for j, (a, b) in enumerate(pairs):
-            std = _pair_difference_std(s[a], s[b]) / math.sqrt(2)
-            if math.isfinite(std):
-                pair_ss[j] += std ** 2 * s[a].size
-                pair_count[j] += s[a].size
-            if j == 0:
-                rn_block = std
-        noise = _Noise(rn_block) if math.isfinite(rn_block) and rn_block > 0 else None
+        for j, (a, b) in enumerate(pairs[1:], start=1):
+            accumulate(j, s[a], s[b])
         out[r0:r1], used[r0:r1] = _clipped_mean(s, sigma=clip_sigma, maxiters=clip_iterations,
                                                 noise=noise)
     pair_rn = [math.sqrt(ss / c) for ss, c in zip(pair_ss, pair_count) if c > 0]
@@ -1396,10 +1415,12 @@ def _write_qa(table_rows, names, meta, path):
     table.write(path, format="ascii.ecsv", overwrite=True)
 
 
-def _frame_header(raw_header, layout, frame_type):
+def _frame_header(raw_header, layout, frame_type, instrument):
+    """Raw keywords minus structural and raw-section ones, plus the orientation cards."""
     from astropy.io import fits
     header = fits.Header()
-    config_section_keys = set()
+    config_section_keys = {spec.get("keyword") for spec in
+                           (instrument.get("sections") or {}).values() if spec}
     for card in raw_header.cards:
         if card.keyword in _STRUCTURAL or card.keyword in config_section_keys:
             continue
@@ -1463,8 +1484,8 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
         Output frame: PRIMARY = bias in ADU (canonical orientation), UNCERT =
         its variance (ADU^2), MASK = BAD_PIXEL where fewer than half the frames
         survived clipping. Header: ``NCOMBINE``, ``RNMEAS`` (ADU), ``RNMEASE``
-        and ``RDNOISE`` (e-, with the configured gain), ``RNOK`` (within the
-        tolerance of the configured value), orientation and trim keywords.
+        (e-, with the configured gain), ``RNOK`` (within ``RNTOL`` of the
+        configured value), orientation and trim keywords.
     qa : str
         ECSV: one row per frame (overscan level and scatter); the measured and
         configured read noise in the table meta.
@@ -1521,7 +1542,7 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
     if not np.isfinite(variance).all():
         variance = np.where(np.isfinite(variance), variance, np.float32(
             (rn_conf / gain_conf) ** 2)).astype(np.float32)
-    header = _frame_header(first.header, layout, "master_bias")
+    header = _frame_header(first.header, layout, "master_bias", instrument)
     for key in ("OBJECT", "EXPTIME", "DATE-OBS", "IMAGETYP"):
         if key in header:
             header.remove(key)
@@ -1530,7 +1551,8 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
     header["RNMEASE"] = (_finite_or(rn_e), "e- measured read noise, configured gain")
     header["RNCONF"] = (rn_conf, "e- configured read noise")
     header["GAINCONF"] = (gain_conf, "e-/ADU configured gain")
-    header["RNOK"] = (rn_ok, "measured read noise within tolerance")
+    header["RNOK"] = (rn_ok, "RNMEASE within RNTOL of RNCONF")
+    header["RNTOL"] = (tol, "relative read-noise tolerance")
     header["BIASLEV"] = (result.info["mean_level_adu"], "ADU mean residual level")
     stamp(header, inputs=paths)
     write_frame(Frame(np.where(nonfinite, 0, data).astype(np.float32), variance, mask, header,
@@ -1617,8 +1639,8 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
         layout = first.layout
         gain_conf = _configured(first.header, instrument, "gain_e_per_adu", path=first.path)
         rn_conf = _configured(first.header, instrument, "read_noise_e", path=first.path)
-        rn_adu = float(mbias.header.get("RNMEAS", -1))
-        if not (mbias.header.get("RNOK", False) and rn_adu > 0):
+        rn_adu = float(mbias.header.get("RNMEAS", -1))   # measured in ADU: gain-independent
+        if not rn_adu > 0:
             rn_adu = rn_conf / gain_conf
         # pass 1: each flat whole (one at a time, two for the gain pairs)
         levels, n_sat = [], []
@@ -1676,7 +1698,7 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
     mask[defects] |= _BAD
     response = np.where(defects, np.float32(1), resp.response).astype(np.float32)
     variance = np.where(defects, np.float32(0), resp.variance).astype(np.float32)
-    header = _frame_header(first.header, layout, "master_flat")
+    header = _frame_header(first.header, layout, "master_flat", instrument)
     for key in ("OBJECT", "EXPTIME", "DATE-OBS", "IMAGETYP"):
         if key in header:
             header.remove(key)
@@ -1699,15 +1721,16 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
             "gain_configured_e_per_adu": gain_conf, "gain_within_tolerance": gain_ok,
             "gain_tolerance": gtol, "read_noise_adu": rn_adu,
             "read_noise_e_measured_gain": _finite_or(rn_adu * gain_meas),
-            "n_frames": len(paths), "n_bad": resp.info["n_bad"],
+            "n_frames": len(paths), "n_bad": int(((mask & _BAD) != 0).sum()),
+            "n_known_defects": int(defects.sum()),
             "n_unilluminated": resp.info["n_unilluminated"], "norm": resp.info["norm"],
             "response_scatter": resp.info["response_scatter"],
             "illuminated_rows": resp.info["illuminated_rows"], "n_clipped": comb.info["n_clipped"]}
     _write_qa(rows, ["frame", "level_adu", "n_saturated", "pair_with", "pair_gain_e_per_adu",
                      "pair_tiles"], meta, qa)
-    log.info("master flat %s: %d frames, gain %.4f e-/ADU (configured %s), %d bad, %d "
-             "unilluminated pixels", master, len(paths), gain_meas, gain_conf,
-             resp.info["n_bad"], resp.info["n_unilluminated"])
+    log.info("master flat %s: %d frames, gain %.4f e-/ADU (configured %s), %d bad (%d of them "
+             "known defects), %d unilluminated pixels", master, len(paths), gain_meas, gain_conf,
+             int(((mask & _BAD) != 0).sum()), int(defects.sum()), resp.info["n_unilluminated"])
     return master
 
 
@@ -1754,9 +1777,16 @@ def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument,
         gain, gain_src = float(mflat.header["GAINMEAS"]), "measured"
     rn = _configured(header, instrument, "read_noise_e", path=raw)
     rn_src = "configured"
-    if opts["use_measured_read_noise"] and mbias.header.get("RNOK", False) \
-            and float(mbias.header.get("RNMEAS", -1)) > 0:
-        rn, rn_src = float(mbias.header["RNMEAS"]) * gain, "measured"
+    rn_meas = float(mbias.header.get("RNMEAS", -1)) * gain
+    if opts["use_measured_read_noise"] and rn_meas > 0:
+        tol = float(mbias.header.get("RNTOL", BIAS_DEFAULTS["read_noise_tolerance"]))
+        if abs(rn_meas / rn - 1) <= tol:
+            rn, rn_src = rn_meas, "measured"
+        else:
+            warnings.warn(f"{calibrated}: measured read noise {rn_meas:.3f} e- (master bias "
+                          f"{Path(bias).name} x gain {gain:.4f}) differs from the configured "
+                          f"{rn:.3f} e- by more than {100 * tol:.0f}%; the configured value is "
+                          "used", CalibrationQualityWarning)
     shape = layout.orientation.canonical_shape(layout.data.shape)
     for name, m in (("bias", mbias), ("flat", mflat)):
         if m.shape != shape:
@@ -1776,7 +1806,7 @@ def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument,
             overscan_options=ov_opts)
     except ValueError as exc:
         raise InputFileError(raw, str(exc)) from None
-    out_header = _frame_header(header, layout, frame_type)
+    out_header = _frame_header(header, layout, frame_type, instrument)
     out_header["GAIN"] = (gain, "e-/ADU gain used to convert to electrons")
     out_header["GAINSRC"] = (gain_src, "where GAIN came from")
     out_header["RDNOISE"] = (rn, "e- read noise used in the variance")

@@ -7,11 +7,13 @@ _CCD_INSTRUMENT_KEYS = ("pixel_extension", "sections", "gain_e_per_adu", "read_n
                         "saturation_adu", "dispersion_axis", "wavelength_increases_with_pixel")
 
 
-def ccd_instrument():
-    """The part of the instrument description the CCD steps read."""
+def ccd_instrument(*, saturation=True):
+    """The part of the instrument description the CCD steps read (biases need no saturation)."""
     ccd = {key: INSTRUMENT.get(key) for key in _CCD_INSTRUMENT_KEYS}
     ccd["pixel_extension"] = INSTRUMENT.get("pixel_extension", 0)
     ccd["binning_keyword"] = INSTRUMENT.get("keywords", {}).get("binning")
+    if not saturation:
+        del ccd["saturation_adu"]
     return ccd
 
 
@@ -52,7 +54,7 @@ rule master_bias:
     wildcard_constraints:
         readout=r"[A-Za-z0-9.-]+(_[A-Za-z0-9.-]+)*",
     params:
-        instrument=ccd_instrument(),
+        instrument=ccd_instrument(saturation=False),
         overscan=config.get("overscan", {}),
         bias=config.get("bias", {}),
     log:
