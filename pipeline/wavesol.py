@@ -55,8 +55,9 @@ from .errors import ArcQualityWarning, InputFileError, WavelengthSolutionError
 
 __all__ = [
     "SPEED_OF_LIGHT_KM_S", "HEADER_KEYWORDS", "WavelengthSolution1D", "LineTraces",
-    "WavelengthSolution2D", "isolated_lines", "search_grating_parameters", "match_lines",
-    "fit_grating_parameters", "solve_1d", "trace_lines", "fit_line_tilt", "solve_wavelength",
+    "WavelengthSolution2D", "isolated_lines", "merge_unresolved", "search_grating_parameters", "match_lines",
+    "fit_grating_parameters", "solve_1d", "trace_lines", "fit_line_tilt", "predicted_positions",
+    "solve_wavelength",
     "solution_header", "solve_wavelength_file", "load_wavelength_map", "WavelengthMap",
 ]
 
@@ -76,7 +77,7 @@ HEADER_KEYWORDS = {
     "WSRMSA": "[Angstrom] rms of the 1-D fit", "WSRMSP": "[px] rms of the 1-D fit",
     "WSRMSV": "[km/s] rms of the 1-D fit", "WSNLINE": "lines used in the 1-D fit",
     "WSNREJ": "matched lines rejected by clipping", "WSNDET": "lines detected",
-    "WSYREF": "[px] reference row (0-based) of the 1-D solution and the WCS",
+    "WSYREF": "[px] reference row (0-based) of the 1-D fit",
     "WCPOLY": "correction type (chebyshev in x, Angstrom)", "WCDEG": "correction degree",
     "WCDOM0": "[px] correction domain start", "WCDOM1": "[px] correction domain end",
     "WCCn": "[Angstrom] correction coefficient n",
@@ -309,6 +310,61 @@ def isolated_lines(wave_angstrom, species, intensity, *, min_separation_angstrom
         faint = same & np.isfinite(inten[:, None]) & np.isfinite(inten[None, :]) & (
             inten[None, :] < faint_ratio * inten[:, None])
     return ~np.any(close & ~faint, axis=1)
+
+
+def merge_unresolved(line_list, *, max_separation_angstrom):
+    """Merge same-species lines closer than ``max_separation_angstrom`` into one.
+
+    Components much closer than the resolution make one profile whose centroid
+    is the intensity-weighted mean wavelength; the merged line gets that
+    wavelength, the summed intensity, the sources joined and a note. Groups with
+    an unknown intensity are left as they are (and so count as blends).
+
+    Parameters
+    ----------
+    line_list : LineList
+    max_separation_angstrom : float
+
+    Returns
+    -------
+    LineList
+    """
+    from .linelists import LineList
+
+    w = line_list.wave_air_angstrom
+    if len(line_list) < 2:
+        return line_list
+    order = np.argsort(w, kind="stable")
+    groups, current = [], [order[0]]
+    for i in order[1:]:
+        j = current[-1]
+        if (w[i] - w[j] < max_separation_angstrom
+                and line_list.species[i] == line_list.species[j]):
+            current.append(i)
+        else:
+            groups.append(current)
+            current = [i]
+    groups.append(current)
+    cols = {k: [] for k in ("species", "wave", "inten", "source", "note")}
+    for g in groups:
+        inten = line_list.relative_intensity[g]
+        if len(g) == 1 or not np.all(np.isfinite(inten)):
+            for i in g:
+                cols["species"].append(line_list.species[i])
+                cols["wave"].append(w[i])
+                cols["inten"].append(line_list.relative_intensity[i])
+                cols["source"].append(line_list.source[i])
+                cols["note"].append(line_list.note[i])
+            continue
+        cols["species"].append(line_list.species[g[0]])
+        cols["wave"].append(float(np.sum(w[g] * inten) / np.sum(inten)))
+        cols["inten"].append(float(np.sum(inten)))
+        cols["source"].append(";".join(dict.fromkeys(";".join(line_list.source[g]).split(";"))))
+        cols["note"].append("unresolved blend of " + ", ".join(f"{v:.4f}" for v in w[g])
+                            + " (intensity-weighted)")
+    return LineList(np.array(cols["species"], dtype=str), np.array(cols["wave"], dtype=float),
+                    np.array(cols["inten"], dtype=float), np.array(cols["source"], dtype=str),
+                    np.array(cols["note"], dtype=str), dict(line_list.info))
 
 
 def _tilt_for(wave_angstrom, x_px, model, focal_length_mm):
@@ -550,10 +606,9 @@ def _solution_pixels(model, coeffs, domain, wave_angstrom):
 def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_deg=0.6,
              focal_range_fraction=0.035, search_tolerance_px=1.5, match_tolerance_px=2.0,
              final_tolerance_px=1.0, isolation_fwhm=2.0, faint_neighbour_ratio=0.03,
-             center_prior_px=10.0, correction_degree=3, correction_min_degree=3, clip_sigma=3.0,
-             clip_iterations=5,
-             centroid_floor_px=0.01, min_lines=8, max_rms_px=0.3, min_matched_fraction=0.3,
-             ambiguity_ratio=0.8, n_search_lines=40):
+             merge_fwhm=0.1, center_prior_px=10.0, correction_degree=3, correction_min_degree=3,
+             clip_sigma=3.0, clip_iterations=5, centroid_floor_px=0.01, min_lines=8,
+             max_rms_px=0.3, min_matched_fraction=0.3, ambiguity_ratio=0.8, n_search_lines=40):
     """Identify the arc lines and fit the 1-D wavelength solution of the reference row.
 
     Parameters
@@ -579,6 +634,9 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
         Listed lines with a lit neighbour closer than this many FWHM are not used.
     faint_neighbour_ratio : float
         Same-species neighbours fainter than this fraction do not count.
+    merge_fwhm : float
+        Same-species lines closer than this many FWHM are merged into one line at
+        their intensity-weighted wavelength (:func:`merge_unresolved`).
     center_prior_px : float
         1-sigma prior width on the camera-axis pixel.
     correction_degree : int
@@ -640,6 +698,7 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
             "check LAMPS, instrument.lamps and the grating tilt")
     fwhm_px = float(lines.info.get("fwhm_median_px", np.nanmedian(lines.fwhm_px)))
     disp = abs(float(nominal.dispersion(nominal.center_px)))
+    cand = merge_unresolved(cand, max_separation_angstrom=merge_fwhm * fwhm_px * disp)
     iso = isolated_lines(cand.wave_air_angstrom, cand.species, cand.relative_intensity,
                          min_separation_angstrom=isolation_fwhm * fwhm_px * disp,
                          faint_ratio=faint_neighbour_ratio)
@@ -772,7 +831,7 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
             raise WavelengthSolutionError(
                 f"fitted {name} is {value:+.4g} from nominal, beyond the search range, for {setup}")
     n_rej = int((~keep).sum())
-    if n_rej > 0.2 * keep.size:
+    if n_rej > keep.size / 3:
         warnings.warn(f"{n_rej} of {keep.size} matched arc lines rejected by clipping",
                       ArcQualityWarning, stacklevel=2)
     order = np.argsort(x_m)
@@ -799,36 +858,64 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
 # 2-D: tracing and line tilt
 # --------------------------------------------------------------------------------------
 
-def _band_shifts(spectra, ref_index, max_shift_px):
-    """Shift (px) of each band spectrum relative to band ``ref_index`` by cross-correlation."""
-    nb, nx = spectra.shape
-    s = spectra - np.median(spectra, axis=1, keepdims=True)
-    s = np.where(np.isfinite(s), s, 0.0)
+def _xcorr_shift(a, b, max_shift_px):
+    """Shift (px) of each row of ``a`` relative to the same row of ``b`` (cross-correlation
+    peak with a parabolic refinement), searched within ``+-max_shift_px``."""
+    nb, nx = a.shape
     n = 1 << int(math.ceil(math.log2(2 * nx)))
-    fs = np.fft.rfft(s, n, axis=1)
-    cc = np.fft.irfft(fs * np.conj(fs[ref_index])[None, :], n, axis=1)
+    fa = np.fft.rfft(a, n, axis=1)
+    fb = np.fft.rfft(b, n, axis=1)
+    cc = np.fft.irfft(fa * np.conj(fb), n, axis=1)
     lags = np.r_[np.arange(0, n // 2), np.arange(-n // 2, 0)]
-    m = int(math.ceil(max_shift_px))
-    sel = np.flatnonzero(np.abs(lags) <= m)
+    sel = np.flatnonzero(np.abs(lags) <= int(math.ceil(max_shift_px)) + 1)
+    sel = sel[np.argsort(lags[sel])]
     sub = cc[:, sel]
-    k = np.argmax(sub, axis=1)
-    k = np.clip(k, 1, sel.size - 2)
-    y0, y1, y2 = (sub[np.arange(nb), k - 1], sub[np.arange(nb), k], sub[np.arange(nb), k + 1])
+    k = np.clip(np.argmax(sub, axis=1), 1, sel.size - 2)
+    rows = np.arange(nb)
+    y0, y1, y2 = sub[rows, k - 1], sub[rows, k], sub[rows, k + 1]
     den = y0 - 2 * y1 + y2
     with np.errstate(divide="ignore", invalid="ignore"):
         frac = np.where(den < 0, 0.5 * (y0 - y2) / den, 0.0)
     return lags[sel][k] + np.clip(frac, -0.5, 0.5)
 
 
+def _band_shifts(spectra, ref_index, max_step_px=2.0, min_signal_fraction=0.05):
+    """Shift (px) of each band relative to band ``ref_index``.
+
+    Each band is cross-correlated with its neighbour towards the reference band
+    and the steps are summed outwards, so lines tilted or curved by many pixels
+    over the slit are followed step by step. Bands with less than
+    ``min_signal_fraction`` of the reference band's line signal (slit ends) keep
+    the shift of their neighbour.
+    """
+    nb, nx = spectra.shape
+    s = spectra - np.median(spectra, axis=1, keepdims=True)
+    s = np.where(np.isfinite(s), np.clip(s, 0, None), 0.0)
+    signal = s.sum(axis=1)
+    weak = signal < min_signal_fraction * max(signal[ref_index], 1e-30)
+    toward = np.where(np.arange(nb) > ref_index, np.arange(nb) - 1, np.arange(nb) + 1)
+    toward[ref_index] = ref_index
+    steps = _xcorr_shift(s, s[toward], max_step_px)
+    steps = np.where(weak | (np.abs(steps) > max_step_px), 0.0, steps)
+    steps[ref_index] = 0.0
+    shifts = np.zeros(nb)
+    for b in range(ref_index + 1, nb):
+        shifts[b] = shifts[b - 1] + steps[b]
+    for b in range(ref_index - 1, -1, -1):
+        shifts[b] = shifts[b + 1] + steps[b]
+    return shifts
+
+
 def trace_lines(data, variance, mask, x_ref_px, wave_angstrom, *, reference_row,
-                sigma_px, band_rows=8, min_snr=10.0, max_shift_px=8.0, max_offset_px=1.0,
-                half_width_px=None):
+                sigma_px, band_rows=8, min_snr=10.0, max_offset_px=1.0, half_width_px=None,
+                guess_px=None):
     """Measure identified lines in bands of rows across the slit.
 
-    The shift of every band relative to the band holding ``reference_row`` is
-    found by cross-correlation; each line is then fitted (pixel-integrated
-    Gaussian, :func:`pipeline.arclines.measure_lines`) near its shifted position,
-    all bands and lines in one vectorised call.
+    Without ``guess_px`` the shift of every band relative to the band holding
+    ``reference_row`` is found by cross-correlating neighbouring bands step by
+    step; each line is then fitted (pixel-integrated Gaussian,
+    :func:`pipeline.arclines.measure_lines`) near its predicted position, all
+    bands and lines in one vectorised call.
 
     Parameters
     ----------
@@ -842,10 +929,12 @@ def trace_lines(data, variance, mask, x_ref_px, wave_angstrom, *, reference_row,
         Rows per band.
     min_snr : float
         Fewest flux/error for a point to count.
-    max_shift_px : float
-        Largest band shift searched by the cross-correlation.
     max_offset_px : float
         Largest distance between a fitted centre and its predicted position.
+    half_width_px : int, optional
+        Fit window half width (default from ``sigma_px``).
+    guess_px : ndarray, shape (n_bands, n_lines), optional
+        Predicted positions (e.g. from a first 2-D fit); replaces the band shifts.
 
     Returns
     -------
@@ -864,9 +953,15 @@ def trace_lines(data, variance, mask, x_ref_px, wave_angstrom, *, reference_row,
     flux, var, bmask = _band_sums(d, v, mk)
     y_band = np.arange(nb) * br + 0.5 * (br - 1)
     ref_band = int(np.clip(round((reference_row - 0.5 * (br - 1)) / br), 0, nb - 1))
-    shifts = _band_shifts(flux, ref_band, max_shift_px)
-    shifts -= shifts[ref_band]
     x_ref = np.asarray(x_ref_px, dtype=float)
+    if guess_px is None:
+        shifts = _band_shifts(flux, ref_band)
+        guess = x_ref[None, :] + shifts[:, None]
+    else:
+        guess = np.asarray(guess_px, dtype=float)
+        if guess.shape != (nb, x_ref.size):
+            raise ValueError(f"`guess_px` must have shape {(nb, x_ref.size)}, got {guess.shape}")
+        shifts = np.nanmedian(guess - x_ref[None, :], axis=1)
     n_lines = x_ref.size
     # one long spectrum: bands end to end, separated by zero-weight gaps
     hw = int(half_width_px) if half_width_px is not None else int(math.ceil(2.5 * sigma_px) + 1)
@@ -879,7 +974,6 @@ def trace_lines(data, variance, mask, x_ref_px, wave_angstrom, *, reference_row,
         long_flux[b * stride:b * stride + nx] = flux[b]
         long_var[b * stride:b * stride + nx] = var[b]
         long_mask[b * stride:b * stride + nx] = bmask[b]
-    guess = x_ref[None, :] + shifts[:, None]
     offsets = (np.arange(nb) * stride)[:, None]
     fit = measure_lines(long_flux, long_var, (guess + offsets).ravel(), sigma_guess_px=sigma_px,
                         mask=long_mask, half_width_px=hw, max_shift_px=max_offset_px)
@@ -887,7 +981,8 @@ def trace_lines(data, variance, mask, x_ref_px, wave_angstrom, *, reference_row,
     x_err = fit["x_err_px"].reshape(nb, n_lines)
     with np.errstate(divide="ignore", invalid="ignore"):
         snr = (fit["flux_e"] / fit["flux_err_e"]).reshape(nb, n_lines)
-    inside = (guess > hw) & (guess < nx - 1 - hw)
+    inside = np.isfinite(guess) & (guess > hw) & (guess < nx - 1 - hw)
+    guess = np.where(np.isfinite(guess), guess, x_ref[None, :])
     ok = (fit["ok"].reshape(nb, n_lines) & (snr >= min_snr) & inside
           & ~fit["saturated"].reshape(nb, n_lines) & ~fit["masked"].reshape(nb, n_lines))
     x = np.where(ok, x, np.nan)
@@ -1029,9 +1124,404 @@ def solve_wavelength(data, variance, mask, lines, line_list, nominal, *, referen
     sol1 = solve_1d(lines, line_list, nominal, nx, reference_row=reference_row, **options_1d)
     used = sol1.lines["used"]
     sigma = float(np.nanmedian(sol1.lines["fwhm_px"][used])) / (2 * math.sqrt(2 * math.log(2)))
-    traces = trace_lines(data, variance, mask, sol1.lines["x_px"][used],
-                         sol1.lines["wave_angstrom"][used], reference_row=reference_row,
+    x_ref, waves = sol1.lines["x_px"][used], sol1.lines["wave_angstrom"][used]
+    fit_options = dict(degree_x=tilt_degree_x, degree_y=tilt_degree_y, clip_sigma=tilt_clip_sigma,
+                       centroid_floor_px=options_1d.get("centroid_floor_px", 0.01))
+    traces = trace_lines(data, variance, mask, x_ref, waves, reference_row=reference_row,
                          sigma_px=sigma, band_rows=trace_band_rows, min_snr=trace_min_snr)
-    return fit_line_tilt(traces, sol1, (ny, nx), degree_x=tilt_degree_x, degree_y=tilt_degree_y,
-                         clip_sigma=tilt_clip_sigma,
-                         centroid_floor_px=options_1d.get("centroid_floor_px", 0.01))
+    sol2 = fit_line_tilt(traces, sol1, (ny, nx), **fit_options)
+    # second pass: measure every band again where the first 2-D fit puts each line
+    guess = predicted_positions(sol2)
+    traces = trace_lines(data, variance, mask, x_ref, waves, reference_row=reference_row,
+                         sigma_px=sigma, band_rows=trace_band_rows, min_snr=trace_min_snr,
+                         max_offset_px=0.75, guess_px=guess)
+    return fit_line_tilt(traces, sol1, (ny, nx), **fit_options)
+
+
+def predicted_positions(solution):
+    """Where each traced line lies in each band according to a 2-D solution.
+
+    Solves ``x + Q(x, y) = x_ref + offset`` by fixed-point iteration.
+
+    Returns
+    -------
+    ndarray, shape (n_bands, n_lines), px
+        ``nan`` for lines the solution did not fit.
+    """
+    tr = solution.traces
+    offsets = np.full(tr.x_ref_px.size, np.nan)
+    fitted = tr.ok.sum(axis=0) >= 3
+    offsets[np.flatnonzero(fitted)] = solution.info["line_offsets_px"][:int(fitted.sum())]
+    target = (tr.x_ref_px - offsets)[None, :]
+    y = tr.y_px[:, None]
+    x = np.broadcast_to(target, tr.x_px.shape).copy()
+    for _ in range(6):
+        x = target - solution.shift(x, y)
+    return x
+
+
+# --------------------------------------------------------------------------------------
+# products: FITS solution, QA table, reader
+# --------------------------------------------------------------------------------------
+
+#: Keywords of the calibrated arc copied into the solution header.
+_COPIED_KEYWORDS = ("OBJECT", "DATE-OBS", "MJD-OBS", "EXPTIME", "INSTRUME", "TELESCOP",
+                    "GRATING", "GRTILT", "SLITWID", "FILTER", "LAMPS", "CCDSUM", "BINSPEC",
+                    "BINSPAT", "ORIENT_T", "ORIENT_X", "ORIENT_Y", "TRIM_X0", "TRIM_Y0")
+
+
+def solution_header(solution, *, arc_header=None, setup="", arc_name=""):
+    """FITS header of the solution map: fitted model as WCS, correction, tilt polynomial.
+
+    Parameters
+    ----------
+    solution : WavelengthSolution2D
+    arc_header : astropy.io.fits.Header, optional
+        Header of the calibrated arc; the keywords in ``_COPIED_KEYWORDS`` are kept.
+    setup : str
+    arc_name : str
+
+    Returns
+    -------
+    astropy.io.fits.Header
+        Axis 1 is the dispersion: ``CTYPE1 = 'AWAV-GRI'`` evaluates the fitted
+        grating model on row ``WSYREF`` (the Chebyshev correction ``WCCn`` is to be
+        added, see :data:`HEADER_KEYWORDS`); axis 2 is the slit pixel (linear).
+    """
+    from astropy.io import fits
+
+    s1 = solution.solution_1d
+    m, m0, e = s1.model, s1.nominal, s1.parameter_errors
+    h = fits.Header()
+    if arc_header is not None:
+        for key in _COPIED_KEYWORDS:
+            if key in arc_header:
+                h[key] = (arc_header[key], arc_header.comments[key])
+    h["SETUP"] = (str(setup), HEADER_KEYWORDS["SETUP"])
+    h["ARCFRAME"] = (str(arc_name), HEADER_KEYWORDS["ARCFRAME"])
+    h["BUNIT"] = ("Angstrom", "pixel values: air wavelength of each pixel centre")
+    h["WAVEKIND"] = ("air", "values are air wavelengths (standard air)")
+    h["WCSAXES"] = 2
+    for key, value, comment in gr.grating_wcs_cards(m, axis=1):
+        h[key] = (value, comment)
+    h["CTYPE2"] = ("LINEAR", "slit pixel")
+    h["CRPIX2"] = (s1.reference_row + 1.0, "reference row (1-based)")
+    h["CRVAL2"] = (s1.reference_row, "[px] 0-based row at CRPIX2")
+    h["CDELT2"] = (1.0, "[px]")
+    rows = [
+        ("WSTILT", m.tilt_deg), ("WSTILTE", e.get("tilt_deg", math.nan)), ("WSTILT0", m0.tilt_deg),
+        ("WSFOCAL", m.focal_length_mm), ("WSFOCALE", e.get("focal_length_mm", math.nan)),
+        ("WSFOCAL0", m0.focal_length_mm), ("WSXCEN", m.center_px),
+        ("WSXCENE", e.get("center_px", math.nan)), ("WSXCEN0", m0.center_px),
+        ("WSBIN", m.binning), ("WSRMSA", s1.rms_angstrom), ("WSRMSP", s1.rms_px),
+        ("WSRMSV", s1.rms_km_s), ("WSNLINE", s1.n_used), ("WSNREJ", s1.n_rejected),
+        ("WSNDET", s1.info.get("n_detected", 0)), ("WSYREF", s1.reference_row),
+        ("WCPOLY", "chebyshev"), ("WCDEG", s1.correction_coeffs.size - 1),
+        ("WCDOM0", s1.domain_px[0]), ("WCDOM1", s1.domain_px[1]),
+    ]
+    for key, value in rows:
+        value = value if not isinstance(value, float) or math.isfinite(value) else -1.0
+        h[key] = (value, HEADER_KEYWORDS[key])
+    for k, c in enumerate(s1.correction_coeffs):
+        h[f"WCC{k}"] = (float(c), f"[Angstrom] correction coefficient {k}")
+    h["WQXDEG"] = (solution.q_coeffs.shape[0] - 1, HEADER_KEYWORDS["WQXDEG"])
+    h["WQYDEG"] = (solution.q_coeffs.shape[1], HEADER_KEYWORDS["WQYDEG"])
+    h["WQXREF"] = (solution.x_ref, HEADER_KEYWORDS["WQXREF"])
+    h["WQXSCL"] = (solution.x_scale, HEADER_KEYWORDS["WQXSCL"])
+    h["WQYSCL"] = (solution.y_scale, HEADER_KEYWORDS["WQYSCL"])
+    for i in range(solution.q_coeffs.shape[0]):
+        for j in range(1, solution.q_coeffs.shape[1] + 1):
+            h[f"WQ{i}{j}"] = (float(solution.q_coeffs[i, j - 1]), f"[px] Q coefficient x^{i} y^{j}")
+    h["WS2DRMSP"] = (solution.rms_px, HEADER_KEYWORDS["WS2DRMSP"])
+    h["WS2DRMSA"] = (solution.rms_angstrom, HEADER_KEYWORDS["WS2DRMSA"])
+    h["WS2DNPT"] = (solution.info["n_points"], HEADER_KEYWORDS["WS2DNPT"])
+    h["WS2DNLN"] = (solution.info["n_lines"], HEADER_KEYWORDS["WS2DNLN"])
+    h.add_comment("lambda(x, y) = lambda_grating(x + Q) + sum_n WCCn T_n(u), u = (2 (x + Q) - "
+                  "WCDOM0 - WCDOM1) / (WCDOM1 - WCDOM0); lambda_grating is the AWAV-GRI axis")
+    h.add_comment("Q(x, y) = sum WQij ((x - WQXREF) / WQXSCL)^i ((y - WSYREF) / WQYSCL)^j, j >= 1")
+    return h
+
+
+def _lines_hdu(solution):
+    from astropy.io import fits
+    from astropy.table import Table
+
+    s1 = solution.solution_1d
+    t = Table()
+    for key in ("x_px", "x_err_px", "wave_angstrom", "residual_angstrom", "residual_px", "snr",
+                "fwhm_px"):
+        t[key] = np.asarray(s1.lines[key], dtype=float)
+    t["species"] = np.asarray(s1.lines["species"], dtype=str)
+    t["source"] = np.asarray(s1.lines["source"], dtype=str)
+    t["used"] = np.asarray(s1.lines["used"], dtype=bool)
+    hdu = fits.table_to_hdu(t)
+    hdu.name = "LINES"
+    return hdu
+
+
+def _trace_hdu(solution):
+    from astropy.io import fits
+    from astropy.table import Table
+
+    tr = solution.traces
+    nb, nl = tr.x_px.shape
+    b, l = np.nonzero(np.isfinite(tr.x_px))
+    t = Table()
+    t["y_px"] = tr.y_px[b]
+    t["wave_angstrom"] = tr.wave_angstrom[l]
+    t["x_px"] = tr.x_px[b, l]
+    t["x_err_px"] = tr.x_err_px[b, l]
+    t["residual_px"] = solution.residual_px[b, l]
+    t["used"] = solution.used[b, l]
+    hdu = fits.table_to_hdu(t)
+    hdu.name = "TRACE"
+    return hdu
+
+
+def qa_metrics(solution, *, setup="", arc_name="", filter_name="", overlap=None,
+               elapsed_s=math.nan):
+    """Every scalar QA metric of a solution, as a flat dict (units in the names)."""
+    s1 = solution.solution_1d
+    m, m0, e = s1.model, s1.nominal, s1.parameter_errors
+    ny, nx = solution.shape
+    xc = (nx - 1) / 2
+    used = s1.lines["used"]
+    fwhm = float(np.nanmedian(s1.lines["fwhm_px"][used])) if used.any() else math.nan
+    disp_c = float(abs(s1.dispersion(xc)))
+    lam_c = float(s1.wavelength(xc))
+    # line tilt and curvature on the detector centre column, from Q
+    y_ref = solution.y_ref
+    dq_dy = float(solution.shift(xc, y_ref + 0.5) - solution.shift(xc, y_ref - 0.5))
+    edge = float(solution.shift(xc, 0.0)), float(solution.shift(xc, ny - 1.0))
+    lam_edges = solution.wavelength(np.array([0.0, nx - 1.0]), np.array([y_ref, y_ref]))
+    metrics = {
+        "arc_frame": arc_name, "setup": setup, "filter": filter_name,
+        "nx_px": nx, "ny_px": ny, "reference_row_px": s1.reference_row,
+        "n_detected": s1.info.get("n_detected", 0), "n_clean_detected": s1.info.get("n_clean", 0),
+        "n_listed_in_range": s1.info.get("n_listed", 0),
+        "n_listed_isolated": s1.info.get("n_isolated_listed", 0),
+        "n_matched": int(used.size), "n_used": s1.n_used, "n_rejected": s1.n_rejected,
+        "rms_angstrom": s1.rms_angstrom, "rms_px": s1.rms_px, "rms_km_s": s1.rms_km_s,
+        "tilt_nominal_deg": m0.tilt_deg, "tilt_fitted_deg": m.tilt_deg,
+        "tilt_error_deg": e.get("tilt_deg", math.nan),
+        "focal_length_nominal_mm": m0.focal_length_mm, "focal_length_fitted_mm": m.focal_length_mm,
+        "focal_length_error_mm": e.get("focal_length_mm", math.nan),
+        "camera_axis_nominal_px": m0.center_px, "camera_axis_fitted_px": m.center_px,
+        "camera_axis_error_px": e.get("center_px", math.nan),
+        "detector_offset_px": m.center_px - m0.center_px,
+        "correction_degree": int(s1.correction_coeffs.size - 1),
+        "correction_max_abs_angstrom": float(np.max(np.abs(s1.correction(np.linspace(0, nx - 1, 64))))),
+        "wavelength_first_px_angstrom": float(lam_edges[0]),
+        "wavelength_last_px_angstrom": float(lam_edges[1]),
+        "central_wavelength_angstrom": lam_c,
+        "dispersion_center_angstrom_per_px": disp_c,
+        "dispersion_center_nominal_angstrom_per_px": float(abs(m0.dispersion(xc))),
+        "fwhm_median_px": fwhm,
+        "resolving_power_measured": lam_c / (fwhm * disp_c) if fwhm > 0 else math.nan,
+        "rms_2d_px": solution.rms_px, "rms_2d_angstrom": solution.rms_angstrom,
+        "n_points_2d": solution.info["n_points"], "n_rejected_2d": solution.info["n_rejected"],
+        "n_lines_traced": solution.info["n_lines"],
+        "line_tilt_center_px_per_row": dq_dy,
+        "line_shift_first_row_px": edge[0], "line_shift_last_row_px": edge[1],
+        "order_overlap_unblocked": bool(overlap) if overlap is not None else False,
+        "solve_time_s": elapsed_s,
+    }
+    return metrics
+
+
+def qa_table(solution, metrics):
+    """QA table: one row per matched line; the metrics in the table's metadata."""
+    from astropy.table import Table
+
+    s1 = solution.solution_1d
+    t = Table()
+    t["x_px"] = np.asarray(s1.lines["x_px"], dtype=float)
+    t["x_err_px"] = np.asarray(s1.lines["x_err_px"], dtype=float)
+    t["wave_angstrom"] = np.asarray(s1.lines["wave_angstrom"], dtype=float)
+    t["species"] = np.asarray(s1.lines["species"], dtype=str)
+    t["source"] = np.asarray(s1.lines["source"], dtype=str)
+    t["used"] = np.asarray(s1.lines["used"], dtype=bool)
+    t["residual_angstrom"] = np.asarray(s1.lines["residual_angstrom"], dtype=float)
+    t["residual_px"] = np.asarray(s1.lines["residual_px"], dtype=float)
+    t["residual_km_s"] = SPEED_OF_LIGHT_KM_S * t["residual_angstrom"] / t["wave_angstrom"]
+    t["snr"] = np.asarray(s1.lines["snr"], dtype=float)
+    t.meta.update(metrics)
+    return t
+
+
+@dataclass(frozen=True)
+class WavelengthMap:
+    """A wavelength solution read back from its FITS file.
+
+    Attributes
+    ----------
+    wave_angstrom : ndarray, shape (ny, nx), float64, Angstrom (air)
+    header : astropy.io.fits.Header
+    """
+
+    wave_angstrom: np.ndarray
+    header: object
+
+    @property
+    def shape(self):
+        return self.wave_angstrom.shape
+
+
+def load_wavelength_map(path):
+    """Read the dense wavelength map written by :func:`solve_wavelength_file`.
+
+    Returns
+    -------
+    WavelengthMap
+        ``.wave_angstrom`` (ny, nx) float64 and the header (fitted tilt ``WSTILT``,
+        rms ``WSRMSA``/``WSRMSP``/``WSRMSV``, ``SETUP``, WCS, ...).
+
+    Raises
+    ------
+    InputFileError
+        When the file cannot be read, the PRIMARY HDU is not a 2-D map in Angstrom,
+        or the values are not increasing along axis 1.
+    """
+    from astropy.io import fits
+
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            header = hdul[0].header.copy()
+            data = hdul[0].data
+            wave = None if data is None else np.asarray(data, dtype=np.float64)
+    except OSError as exc:
+        raise InputFileError(path, f"cannot be read as FITS ({exc})") from None
+    if wave is None or wave.ndim != 2:
+        raise InputFileError(path, "PRIMARY HDU must hold the 2-D wavelength map lambda(y, x); "
+                             f"found {None if wave is None else wave.shape}")
+    if str(header.get("BUNIT", "")).strip().lower() not in ("angstrom", "a"):
+        raise InputFileError(path, f"keyword BUNIT = {header.get('BUNIT')!r}; expected 'Angstrom' "
+                             "(a map written by pipeline.wavesol.solve_wavelength_file)")
+    row = wave[wave.shape[0] // 2]
+    if not np.all(np.isfinite(row)) or np.any(np.diff(row) <= 0):
+        raise InputFileError(path, "wavelengths must be finite and increase along axis 1 "
+                             "(canonical orientation)")
+    return WavelengthMap(wave, header)
+
+
+def _nominal_for(header, grating, *, nx, path, tilt_keyword="GRTILT"):
+    from .headers import header_float
+
+    tilt = header_float(header, tilt_keyword, path=path)
+    if "BINSPEC" in header:
+        binning = int(header_float(header, "BINSPEC", path=path, positive=True))
+    else:
+        raise InputFileError(path, "keyword BINSPEC missing; expected the binning along the "
+                             "dispersion, written by calibrate_frame")
+    return gr.model_from_config(grating, tilt_deg=tilt, binning=binning, nx_px=nx)
+
+
+def solve_wavelength_file(*, arc, lines, solution, qa, plot_lines=None, plot_residuals=None,
+                          plot_residual_map=None, plot_dispersion=None, grating, lamps,
+                          setup="", tilt_keyword="GRTILT", lamps_keyword="LAMPS",
+                          filter_keyword="FILTER",
+                          line_list=None, exclude_line_sources=("memory",),
+                          order_overlap_blue_limit_angstrom=gr.DEFAULT_BLUE_LIMIT_ANGSTROM,
+                          tilt_search_deg=0.6, focal_length_search_fraction=0.035,
+                          trace_band_rows=8, trace_min_snr=10.0, tilt_degree_x=2,
+                          tilt_degree_y=2, tilt_clip_sigma=4.0, **options_1d):
+    """Solve one calibrated arc and write the map, the QA table and the QA figures.
+
+    Parameters
+    ----------
+    arc : str
+        Calibrated arc frame (canonical orientation; header with GRTILT, LAMPS,
+        BINSPEC, FILTER).
+    lines : str
+        Line table from :func:`pipeline.arclines.find_arc_lines_file`.
+    solution, qa : str
+        Output paths: FITS map and QA ECSV.
+    plot_lines, plot_residuals, plot_residual_map, plot_dispersion : str, optional
+        Output PNG paths.
+    grating : dict
+        Config ``instrument.grating``.
+    lamps : dict
+        Config ``instrument.lamps``.
+    setup : str
+        Setup id (recorded in the header and QA).
+    tilt_keyword, lamps_keyword, filter_keyword : str
+        Header keywords of the grating tilt (deg), the lamps and the filter
+        (config ``instrument.keywords``).
+    line_list : str, optional
+        Line list CSV (default: the shipped one).
+    exclude_line_sources : sequence of str
+    order_overlap_blue_limit_angstrom : float
+    tilt_search_deg, focal_length_search_fraction : float
+        Search ranges of the identification.
+    trace_band_rows, trace_min_snr, tilt_degree_x, tilt_degree_y, tilt_clip_sigma
+        2-D options (:func:`solve_wavelength`).
+    **options_1d
+        Further options of :func:`solve_1d`.
+
+    Raises
+    ------
+    WavelengthSolutionError
+        When no trustworthy solution is found (nothing is written).
+    """
+    import time
+
+    from .arclines import read_lines_table
+    from .frames import read_frame
+    from .headers import header_str
+    from .linelists import read_line_list, species_for_lamps
+    from .provenance import stamp
+
+    start = time.perf_counter()
+    frame = read_frame(arc)
+    ny, nx = frame.shape
+    found = read_lines_table(lines)
+    nominal = _nominal_for(frame.header, grating, nx=nx, path=arc, tilt_keyword=tilt_keyword)
+    species = species_for_lamps(header_str(frame.header, lamps_keyword, path=arc, default=""),
+                                lamps, path=arc, keyword=lamps_keyword)
+    catalogue = read_line_list(line_list, species=species, exclude_sources=exclude_line_sources)
+    first = found.info.get("band_first_row", ny // 2)
+    last = found.info.get("band_last_row", ny // 2)
+    try:
+        sol = solve_wavelength(frame.data, frame.variance, frame.mask, found, catalogue, nominal,
+                               reference_row=0.5 * (float(first) + float(last)),
+                               trace_band_rows=trace_band_rows, trace_min_snr=trace_min_snr,
+                               tilt_degree_x=tilt_degree_x, tilt_degree_y=tilt_degree_y,
+                               tilt_clip_sigma=tilt_clip_sigma, tilt_range_deg=tilt_search_deg,
+                               focal_range_fraction=focal_length_search_fraction, **options_1d)
+    except WavelengthSolutionError as exc:
+        raise WavelengthSolutionError(f"{arc} (setup {setup or '?'}): {exc}") from None
+    filter_name = header_str(frame.header, filter_keyword, path=arc, default="NONE")
+    cut_on = gr._config_filter_cut_on(grating, filter_name)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        gr.summarize_setup(sol.solution_1d.model, nx, filter_name=filter_name,
+                           cut_on_angstrom=cut_on,
+                           blue_limit_angstrom=order_overlap_blue_limit_angstrom)
+    for w in caught:
+        warnings.warn(f"{arc}: {w.message}", w.category, stacklevel=2)
+    wave_map = sol.wavelength_map()
+    elapsed = time.perf_counter() - start
+    arc_name = Path(arc).name
+    header = solution_header(sol, arc_header=frame.header, setup=setup, arc_name=arc_name)
+    stamp(header, inputs=[arc, lines])
+
+    from astropy.io import fits
+    Path(solution).parent.mkdir(parents=True, exist_ok=True)
+    fits.HDUList([fits.PrimaryHDU(wave_map, header=header), _lines_hdu(sol),
+                  _trace_hdu(sol)]).writeto(solution, overwrite=True, checksum=True)
+    metrics = qa_metrics(sol, setup=setup, arc_name=arc_name, filter_name=filter_name,
+                         overlap=bool(caught), elapsed_s=elapsed)
+    Path(qa).parent.mkdir(parents=True, exist_ok=True)
+    qa_table(sol, metrics).write(qa, format="ascii.ecsv", overwrite=True)
+    plots = {"lines": plot_lines, "residuals": plot_residuals, "residual_map": plot_residual_map,
+             "dispersion": plot_dispersion}
+    if any(plots.values()):
+        from . import qa_wavelength
+        from .arclines import extract_band
+
+        band = extract_band(frame.data, frame.variance, frame.mask, center_row=int(
+            round(0.5 * (float(first) + float(last)))), half_width_rows=int(
+            round(0.5 * (float(last) - float(first)))))
+        title = f"{arc_name}  {setup}".strip()
+        qa_wavelength.write_figures(sol, band.flux, found, title=title, paths=plots)
+    return sol

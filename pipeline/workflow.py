@@ -33,6 +33,8 @@ STEPS = {
     "master_bias": ("pipeline.ccd", "make_master_bias_file"),
     "master_flat": ("pipeline.ccd", "make_master_flat_file"),
     "calibrate_frame": ("pipeline.ccd", "calibrate_frame_file"),
+    "find_arc_lines": ("pipeline.arclines", "find_arc_lines_file"),
+    "solve_wavelength": ("pipeline.wavesol", "solve_wavelength_file"),
     "fit_sensitivity": ("pipeline.fluxcal", "fit_sensitivity_file"),
     "flux_calibrate": ("pipeline.fluxcal", "flux_calibrate_file"),
     "manifest": ("pipeline.manifest", "write_manifest_file"),
