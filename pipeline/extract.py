@@ -392,3 +392,223 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     }
     return Extraction(flux, opt_var, opt_mask, box_flux, box_var, box_mask, sky_sum, trace,
                       prof, rejected, info)
+
+
+# =============================================================================== one frame
+#: Defaults of the config sections (the same values as config/schema.yaml).
+RECTIFICATION_DEFAULTS = {"wavelength_grid": "linear", "step_angstrom": None,
+                          "velocity_step_kms": None, "start_angstrom": None,
+                          "end_angstrom": None}
+FLEXURE_DEFAULTS = {"enabled": True, "line_list": None, "use_unverified_lines": False,
+                    "window_fwhm": 3.0, "max_shift_angstrom": 10.0, "min_line_snr": 10.0,
+                    "blend_fwhm": 2.5, "warn_shift_px": 1.0}
+SKY_DEFAULTS = {"knot_spacing_px": 0.6, "spatial_order": 0, "fit_illumination": True,
+                "reject_sigma": 5.0, "max_iterations": 8, "object_snr_min": 5.0,
+                "object_pad_fwhm": 1.5}
+TRACING_DEFAULTS = {"fwhm_guess_arcsec": 1.2, "snr_min": 5.0, "max_objects": 5,
+                    "own_trace_snr": 30.0, "n_bins": 24, "order": 3, "reject_sigma": 3.0,
+                    "min_bin_snr": 5.0, "use_standard_reference": True}
+EXTRACTION_DEFAULTS = {"aperture_fwhm": 1.5, "min_half_width_px": 3.0, "profile_knot_px": 0.5,
+                       "profile_wave_order": 2, "profile_smooth_px": 31, "reject_sigma": 5.0,
+                       "max_iterations": 20, "profile_error_fraction": 0.02,
+                       "max_masked_profile": 0.5, "qa_figures": True}
+
+
+def _options(given, defaults, section):
+    """Fill a config section with its defaults; unknown keys are a ConfigError."""
+    from .errors import ConfigError
+
+    given = dict(given or {})
+    unknown = sorted(set(given) - set(defaults))
+    if unknown:
+        raise ConfigError(f"{section}: unknown option(s) {unknown}; known: {sorted(defaults)}")
+    out = dict(defaults)
+    out.update(given)
+    return out
+
+
+@dataclass(frozen=True)
+class FrameReduction:
+    """Everything the 2-D to 1-D reduction of one frame produced.
+
+    Attributes
+    ----------
+    rectified : pipeline.rectify.RectifiedFrame
+        Sky-subtracted frame on the wavelength grid.
+    sky : ndarray, shape (ny, n_pix), electron
+        Rectified sky model.
+    sky_variance : ndarray, shape (ny, n_pix), electron^2
+        Variance of the sky model (correlated along the slit).
+    background_variance : ndarray, shape (ny, n_pix), electron^2
+        Noise-free variance of read noise and sky photons.
+    signal_variance_factor : ndarray, shape (ny, n_pix)
+        Variance per electron of object signal.
+    sky_region : ndarray of bool, shape (ny, n_pix)
+        Pixels used as sky (objects masked).
+    wave_map : ndarray, shape (ny, nx), Angstrom
+        Flexure-corrected wavelength map of the native frame.
+    flexure : pipeline.flexure.FlexureResult
+    sky_info : dict
+    traces : list of pipeline.trace.Trace
+        Aperture 1 first.
+    half_widths_px : list of float
+    extractions : list of Extraction
+    """
+
+    rectified: object
+    sky: np.ndarray
+    sky_variance: np.ndarray
+    background_variance: np.ndarray
+    signal_variance_factor: np.ndarray
+    sky_region: np.ndarray
+    wave_map: np.ndarray
+    flexure: object
+    sky_info: dict
+    traces: list
+    half_widths_px: list
+    extractions: list
+
+
+def _half_widths(traces, *, aperture_fwhm, min_half_width_px):
+    import warnings
+
+    from .trace import TracingWarning
+
+    half = [max(aperture_fwhm * t.fwhm_px, min_half_width_px) for t in traces]
+    for i, t in enumerate(traces):
+        for j, u in enumerate(traces):
+            if i == j:
+                continue
+            gap = abs(t.centre_px - u.centre_px)
+            if half[i] > 0.5 * gap:
+                warnings.warn(f"aperture {i + 1} narrowed from {half[i]:.1f} to {0.5 * gap:.1f} "
+                              f"rows: aperture {j + 1} is {gap:.1f} rows away", TracingWarning)
+                half[i] = max(0.5 * gap, 1.0)
+    return half
+
+
+def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_species=None,
+                 spatial_scale_arcsec_per_px=0.4, reference_trace=None, reference_name="",
+                 rectification=None, flexure=None, sky=None, tracing=None, extraction=None):
+    """Rectify, correct flexure, subtract the sky, trace and extract one frame.
+
+    Parameters
+    ----------
+    data : ndarray, shape (ny, nx), electron
+        Calibrated frame in canonical orientation.
+    variance : ndarray, shape (ny, nx), electron^2
+    mask : ndarray of uint8, shape (ny, nx)
+    wave_map : ndarray, shape (ny, nx), Angstrom
+        Wavelength of every pixel from the arc solution.
+    line_wave_angstrom : array_like
+        Night-sky line wavelengths (air) for the flexure.
+    line_species : sequence of str, optional
+    spatial_scale_arcsec_per_px : float
+        Slit scale of one (binned) row.
+    reference_trace : pipeline.trace.Trace, optional
+        Bright reference whose shape faint objects borrow.
+    reference_name : str
+    rectification, flexure, sky, tracing, extraction : dict, optional
+        Options of the config sections (defaults: ``*_DEFAULTS`` of this module).
+
+    Returns
+    -------
+    FrameReduction
+
+    Notes
+    -----
+    Order of the steps: objects are found on the native frame and masked; the
+    sky is fitted on the native pixels (:func:`pipeline.sky.fit_sky`); the
+    flexure is measured on the sky pixels against the night-sky lines and the
+    wavelength map corrected (the sky subtraction itself does not depend on
+    it: the sky model is a function of the arc wavelengths); the
+    sky-subtracted frame, the sky model and the variance models are rectified
+    with the same weights; objects are traced and extracted on the rectified
+    frame.
+    """
+    from . import flexure as flx
+    from . import rectify as rct
+    from . import sky as sky_mod
+    from . import trace as trc
+
+    ro = _options(rectification, RECTIFICATION_DEFAULTS, "rectification")
+    fo = _options(flexure, FLEXURE_DEFAULTS, "flexure")
+    so = _options(sky, SKY_DEFAULTS, "sky")
+    to = _options(tracing, TRACING_DEFAULTS, "tracing")
+    eo = _options(extraction, EXTRACTION_DEFAULTS, "extraction")
+    if ro["wavelength_grid"] not in ("linear", "log"):
+        from .errors import ConfigError
+        raise ConfigError(f"rectification.wavelength_grid = {ro['wavelength_grid']!r}; "
+                          "expected 'linear' or 'log'")
+    data = np.asarray(data, float)
+    variance = np.asarray(variance, float)
+    mask = np.asarray(mask, dtype=MASK_DTYPE)
+    wave_map = np.asarray(wave_map, float)
+    for name, arr in (("variance", variance), ("mask", mask), ("wave_map", wave_map)):
+        if arr.shape != data.shape:
+            raise ValueError(f"`{name}` must have the shape of `data` {data.shape}, "
+                             f"got {arr.shape}")
+    fwhm_px = to["fwhm_guess_arcsec"] / spatial_scale_arcsec_per_px
+
+    sky_pixels, _ = trc.object_mask(data, variance, mask, wave_map, fwhm_guess_px=fwhm_px,
+                                    snr_min=so["object_snr_min"], pad_fwhm=so["object_pad_fwhm"],
+                                    max_objects=to["max_objects"])
+    model = sky_mod.fit_sky(data, variance, mask, wave_map, sky_pixels,
+                            knot_spacing_px=so["knot_spacing_px"],
+                            spatial_order=so["spatial_order"],
+                            fit_illumination=so["fit_illumination"],
+                            reject_sigma=so["reject_sigma"], max_iterations=so["max_iterations"])
+    lines = np.atleast_1d(np.asarray(line_wave_angstrom, float))
+    if fo["enabled"] and lines.size:
+        flex = flx.measure_flexure(data, variance, mask, wave_map, sky_pixels & ~model.rejected,
+                                   lines, line_species=line_species,
+                                   window_fwhm=fo["window_fwhm"],
+                                   max_shift_angstrom=fo["max_shift_angstrom"],
+                                   min_snr=fo["min_line_snr"], blend_fwhm=fo["blend_fwhm"],
+                                   warn_shift_px=fo["warn_shift_px"])
+    else:
+        from astropy.table import Table
+        flex = flx.FlexureResult(0.0, float("nan"), 0.0, Table(), "disabled", {})
+    wave_corr = flx.apply_flexure(wave_map, flex.shift_px)
+    d_ss, v_ss, m_ss = sky_mod.subtract_sky(data, variance, mask, model)
+
+    grid = rct.wavelength_grid(wave_corr, step_angstrom=ro["step_angstrom"],
+                               start_angstrom=ro["start_angstrom"],
+                               end_angstrom=ro["end_angstrom"],
+                               log=ro["wavelength_grid"] == "log",
+                               velocity_step_kms=ro["velocity_step_kms"])
+    rect = rct.rectify(d_ss, v_ss, m_ss, wave_corr, grid)
+    wts = rect.weights
+    sky_r = rct.resample_rows(model.sky, wts)
+    sky_err_r = rct.resample_rows(np.sqrt(model.sky_variance), wts)  # fully correlated locally
+    bkg_r = rct.resample_rows(model.background_variance, wts, power=2)
+    wsum = wts.weight_sum
+    gfac = model.info["variance_coefficients"][1] * np.where(
+        wsum > 0, wts.weight_sq_sum / np.where(wsum > 0, wsum, 1.0), 0.0)
+    sky_region = rct.resample_rows(sky_pixels.astype(float), wts) > 0.5 * wsum
+    for arr in (sky_r, sky_err_r, bkg_r, gfac):
+        arr[~wts.covered] = 0.0
+
+    wave_grid = grid.centres_angstrom()
+    traces = trc.trace_frame(rect.data, rect.variance, rect.mask, wave_grid,
+                             fwhm_guess_px=fwhm_px, snr_min=to["snr_min"],
+                             max_objects=to["max_objects"], own_trace_snr=to["own_trace_snr"],
+                             n_bins=to["n_bins"], order=to["order"],
+                             reject_sigma=to["reject_sigma"], min_bin_snr=to["min_bin_snr"],
+                             reference=reference_trace if to["use_standard_reference"] else None,
+                             reference_name=reference_name)
+    half = _half_widths(traces, aperture_fwhm=eo["aperture_fwhm"],
+                        min_half_width_px=eo["min_half_width_px"])
+    extractions = []
+    for tr, h in zip(traces, half):
+        extractions.append(extract(
+            rect.data, rect.variance, rect.mask, tr.position_px(wave_grid), half_width_px=h,
+            background_variance=bkg_r, signal_variance_factor=gfac, sky=sky_r,
+            sky_variance=sky_err_r ** 2, profile_knot_px=eo["profile_knot_px"],
+            profile_wave_order=eo["profile_wave_order"],
+            profile_smooth_px=eo["profile_smooth_px"], reject_sigma=eo["reject_sigma"],
+            max_iterations=eo["max_iterations"],
+            profile_error_fraction=eo["profile_error_fraction"],
+            max_masked_profile=eo["max_masked_profile"]))
+    return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, sky_region, wave_corr, flex,
+                          model.info, traces, half, extractions)
