@@ -1199,7 +1199,7 @@ def solution_header(solution, *, arc_header=None, setup="", arc_name=""):
                 h[key] = (arc_header[key], arc_header.comments[key])
     h["SETUP"] = (str(setup), HEADER_KEYWORDS["SETUP"])
     h["ARCFRAME"] = (str(arc_name), HEADER_KEYWORDS["ARCFRAME"])
-    h["BUNIT"] = ("Angstrom", "pixel values: air wavelength of each pixel centre")
+    h["BUNIT"] = ("Angstrom", "air wavelength at each pixel centre")
     h["WAVEKIND"] = ("air", "values are air wavelengths (standard air)")
     h["WCSAXES"] = 2
     for key, value, comment in gr.grating_wcs_cards(m, axis=1):
