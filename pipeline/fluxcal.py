@@ -1710,6 +1710,9 @@ def _write_listing(path, rows, meta):
     names = ("object", "aperture", "input_file", "file", "status", "reason")
     table = Table(rows=[[str(r.get(n, "")) for n in names] for r in rows] or None,
                   names=names, dtype=[str] * len(names))
+    if any("table_ratio_median" in r for r in rows):
+        for col in ("table_ratio_median", "table_ratio_rms_percent"):
+            table[col] = [float(r.get(col, math.nan)) for r in rows]
     table.meta.update(meta)
     table.write(path, format="ascii.ecsv", overwrite=True)
 
@@ -1717,7 +1720,8 @@ def _write_listing(path, rows, meta):
 def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                         extinction_table=None, setup="", uncalibrated_reason="",
                         include_sensitivity_error=False, spatial_scale_arcsec_per_px=None,
-                        seeing_exponent=-0.2, extended_fwhm_ratio=1.5, site=None):
+                        seeing_exponent=-0.2, extended_fwhm_ratio=1.5, flux_table=None,
+                        exclude_regions=(), site=None):
     """Adapter of rule ``flux_calibrate``: calibrate every spectrum of one frame.
 
     Parameters
@@ -1746,6 +1750,12 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
         source and divided by its modelled slit fraction (total flux); a wider
         one as extended (flux through the slit, no correction).
     extended_fwhm_ratio : float
+    flux_table : str or empty list, optional
+        For a standard-star frame: its flux table. The calibrated spectrum is
+        then compared with it (columns ``table_ratio_median`` and
+        ``table_ratio_rms_percent`` of the listing, outside ``exclude_regions``,
+        and the table drawn in the QA figure): an end-to-end check.
+    exclude_regions : sequence of [min, max], Angstrom
     site : dict, optional
 
     Notes
@@ -1776,6 +1786,14 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
             fit, reason = None, f"extinction table unusable: {exc}"
             warnings.warn(reason, FluxCalibrationWarning, stacklevel=2)
     files = read_spectra_directory(spectra)
+    reference = None
+    table_paths = _as_path_list(flux_table)
+    if table_paths and fit is not None:
+        try:
+            reference = read_flux_table(table_paths[0])
+        except InputFileError as exc:
+            warnings.warn(f"no comparison with the standard's table: {exc}",
+                          FluxCalibrationWarning, stacklevel=2)
     rows, plotted = [], []
     for path, listed in files:
         row = dict(object=listed.get("object", ""), aperture=listed.get("aperture", ""),
@@ -1833,6 +1851,18 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                                  "sensitivity's range (NaN, NO_COVERAGE)")
                 row["reason"] = "; ".join(notes)
                 plotted.append((f"{row['object']} {row['aperture']}".strip(), cal))
+                if reference is not None:
+                    ref_flux = table_flux_in_pixels(reference, pixel_edges(cal.wave_angstrom))
+                    ok = ((cal.mask == 0) & np.isfinite(ref_flux) & np.isfinite(cal.flux)
+                          & ~exclusion_mask(cal.wave_angstrom, exclude_regions))
+                    if ok.sum() > 10:
+                        ratio = cal.flux[ok] / ref_flux[ok]
+                        row["table_ratio_median"] = float(np.median(ratio))
+                        row["table_ratio_rms_percent"] = float(
+                            100.0 * np.sqrt(np.mean((ratio - 1.0) ** 2)))
+                        log.info("%s: calibrated standard / its table: median %.4f, rms %.2f %%",
+                                 target.name, row["table_ratio_median"],
+                                 row["table_ratio_rms_percent"])
             except (PipelineError, ValueError) as exc:
                 row.update(status="uncalibrated", reason=str(exc))
                 warnings.warn(f"{path}: left uncalibrated: {exc}", FluxCalibrationWarning,
@@ -1852,7 +1882,8 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                                            else "not in VAR; see HDU CALVAR")))
     if qa_plot:
         if plotted:
-            qa_flux.plot_fluxed_spectra(plotted, qa_plot, title=f"{frame} ({setup})")
+            qa_flux.plot_fluxed_spectra(plotted, qa_plot, title=f"{frame} ({setup})",
+                                        reference=reference)
         else:
             qa_flux.plot_message(qa_plot, f"{frame}: no calibrated spectrum\n"
                                  f"{reason or 'no spectrum extracted'}", title=frame)

@@ -88,13 +88,15 @@ def plot_sensitivity(fit, points, path, *, title="", exclude_regions=()):
     return path
 
 
-def plot_fluxed_spectra(spectra, path, *, title=""):
+def plot_fluxed_spectra(spectra, path, *, title="", reference=None):
     """Calibrated spectra of one frame with their 1-sigma uncertainty.
 
     Parameters
     ----------
     spectra : sequence of (label, pipeline.fluxcal.CalibratedSpectrum)
     path : str or Path
+    reference : pipeline.fluxcal.FluxTable, optional
+        Drawn over the spectra (a standard star's table).
     """
     plt = _pyplot()
     fig, ax = plt.subplots(figsize=(9, 4.5))
@@ -105,6 +107,14 @@ def plot_fluxed_spectra(spectra, path, *, title=""):
         line, = ax.plot(spec.wave_angstrom, flux, lw=0.8, label=label)
         ax.fill_between(spec.wave_angstrom, flux - sig, flux + sig, color=line.get_color(),
                         alpha=0.3, lw=0)
+    if reference is not None and spectra:
+        lo = min(float(np.nanmin(s.wave_angstrom)) for _, s in spectra)
+        hi = max(float(np.nanmax(s.wave_angstrom)) for _, s in spectra)
+        sel = (reference.wave_angstrom >= lo) & (reference.wave_angstrom <= hi)
+        ax.plot(reference.wave_angstrom[sel], reference.flux[sel], "-", color="tab:red",
+                lw=0.8, alpha=0.7, zorder=3,
+                drawstyle="steps-mid" if reference.bin_width_angstrom is not None else "default",
+                label=f"table {reference.name}")
     if not spectra:
         ax.text(0.5, 0.5, "no spectrum", transform=ax.transAxes, ha="center")
     ax.set_xlabel("wavelength (air)  [Angstrom]")

@@ -48,6 +48,14 @@ def fluxcal_products(frame_id):
     return [out("spectra_fluxed", frame_id), out("qa", f"{frame_id}_fluxed.png")]
 
 
+def _fc_own_table(frame_id):
+    """A standard frame's flux table (for the end-to-end check); [] for other frames."""
+    rec = NIGHT.record(frame_id)
+    if rec.frame_type != "standard":
+        return []
+    return _FC_TABLES.get(_fc_key(rec.object), [])
+
+
 def _fc_sensitivity_input(wildcards):
     setup = NIGHT.record(wildcards.frame).setup
     return out("flux", f"sensitivity_{setup}.fits") if fluxcal_standards(setup) else []
@@ -90,6 +98,7 @@ rule flux_calibrate:
         spectra=out("spectra", "{frame}"),
         sensitivity=_fc_sensitivity_input,
         extinction_table=_FC_EXTINCTION,
+        flux_table=lambda wc: _fc_own_table(wc.frame),
     output:
         fluxed=directory(out("spectra_fluxed", "{frame}")),
         qa_plot=report(out("qa", "{frame}_fluxed.png"), category="Flux calibration",
@@ -103,6 +112,8 @@ rule flux_calibrate:
         spatial_scale_arcsec_per_px=INSTRUMENT["spatial_scale_arcsec_per_px"],
         seeing_exponent=FLUXCAL.get("seeing_exponent", -0.2),
         extended_fwhm_ratio=FLUXCAL.get("extended_fwhm_ratio", 1.5),
+        exclude_regions=lambda wc: (FLUXCAL.get("exclude_regions_angstrom", [])
+                                    if _fc_own_table(wc.frame) else []),
         site=_FC_SITE,
     log:
         log_path("flux_calibrate", "{frame}"),
