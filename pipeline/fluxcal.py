@@ -65,16 +65,17 @@ import numpy as np
 from . import maskbits
 from .errors import (FluxCalibrationError, FluxCalibrationWarning, InputFileError,
                      PipelineError)
-from .extinction import ExtinctionCurve, extinction_at, read_extinction_table, transmission
+from .extinction import extinction_at, read_extinction_table, transmission
 from .maskbits import MaskBit
 
 __all__ = [
-    "FluxTable", "SensitivityPoints", "SensitivityFit", "CalibratedSpectrum", "Spectrum1D",
-    "read_flux_table", "pixel_edges", "table_flux_in_pixels", "exclusion_mask",
-    "measure_sensitivity", "fit_sensitivity", "calibrate_spectrum",
-    "normalise_object_name", "read_spectrum", "read_spectra_directory",
-    "write_sensitivity", "read_sensitivity", "write_fluxed_spectrum",
-    "fit_sensitivity_file", "flux_calibrate_file", "FLUX_UNIT", "LISTING_NAME",
+    "FluxTable", "SensitivityPoints", "SensitivityFit", "CalibratedSpectrum",
+    "ExtractedSpectrum", "read_flux_table", "pixel_edges", "table_flux_in_pixels",
+    "exclusion_mask", "gaussian_slit_fraction", "measure_sensitivity", "fit_with_rejection",
+    "fit_sensitivity", "calibrate_spectrum", "normalise_object_name", "read_spectrum",
+    "read_spectra_directory", "spectrum_airmass", "write_sensitivity", "read_sensitivity",
+    "write_fluxed_spectrum", "fit_sensitivity_file", "flux_calibrate_file", "FLUX_UNIT",
+    "LISTING_NAME",
 ]
 
 log = logging.getLogger(__name__)
