@@ -63,7 +63,7 @@ _NONFINITE = MASK_DTYPE(MaskBit.NONFINITE)
 OVERSCAN_DEFAULTS = {"method": "per_row", "polynomial_order": 3, "smooth_window_rows": 101,
                      "row_statistic": "clipped_mean", "clip_sigma": 3.0}
 BIAS_DEFAULTS = {"clip_sigma": 3.0, "clip_iterations": 5, "block_rows": 128,
-                 "read_noise_tolerance": 0.2, "max_read_noise_pairs": 6}
+                 "read_noise_tolerance": 0.2, "max_read_noise_pairs": 3}
 FLAT_DEFAULTS = {"clip_sigma": 3.0, "clip_iterations": 5, "block_rows": 128,
                  "lamp_knot_spacing_px": 40.0, "keep_slit_illumination": False,
                  "illumination_bin_px": 64, "illumination_knot_spacing_px": 5.0,
@@ -272,7 +272,8 @@ def fit_overscan(overscan_adu, *, method="per_row", polynomial_order=3,
     """
     ov = np.asarray(overscan_adu, dtype=np.float64)
     if ov.ndim != 2 or ov.shape[1] < 1 or ov.shape[0] < 1:
-        raise ValueError(f"`overscan_adu` must be 2-D with at least one column, got shape {ov.shape}")
+        raise ValueError("`overscan_adu` must be 2-D with at least one column, got shape "
+                         f"{ov.shape}")
     rows = ov.shape[0]
     level_rows = _row_statistic(ov, row_statistic, clip_sigma)
     good = np.isfinite(level_rows)
@@ -396,37 +397,52 @@ class _Noise:
         return np.sqrt(var) / s
 
 
-def _clip_columns(sub, *, sigma, maxiters, noise):
-    """Iterative sigma clipping of ``sub`` (n, k) about the median; mean of survivors.
-
-    The spread is the noise model's when given, else the MAD-based standard
-    deviation of the kept values (robust against several outliers).
-    """
-    valid = np.isfinite(sub)
-    keep = valid.copy()
-    n = sub.shape[0]
-    for _ in range(max(int(maxiters), 1)):
+def _median_columns(sub, valid):
+    """Median along axis 0; NaN-aware only for the columns that need it (faster)."""
+    center = np.median(np.where(valid, sub, 0), axis=0)
+    partial = ~valid.all(axis=0)
+    if partial.any():
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            masked = np.where(keep, sub, np.nan)
-            center = np.nanmedian(masked, axis=0)
-            if noise is None:   # robust spread: 1.4826 x median absolute deviation
-                spread = 1.4826 * np.nanmedian(np.abs(masked - center[None, :]), axis=0)[None, :]
-            else:
-                spread = noise.sigma(center, n)
-        new_keep = valid & (np.abs(sub - center[None, :]) <= sigma * spread)
-        # never reject everything: keep the median-nearest values then
+            center[partial] = np.nanmedian(np.where(valid[:, partial], sub[:, partial], np.nan),
+                                           axis=0)
+    return center
+
+
+def _clip_columns(sub, *, sigma, maxiters, noise):
+    """Iterative sigma clipping of ``sub`` (n, k); mean of the survivors.
+
+    The first pass is centred on the median (robust against several
+    outliers), later passes on the mean of the values kept, as the result is.
+    The spread is the noise model's when given, else the MAD-based standard
+    deviation about the median, then the standard deviation of the kept values.
+    """
+    valid = np.isfinite(sub)
+    n = sub.shape[0]
+    center = _median_columns(sub, valid)
+    keep = valid
+    for iteration in range(max(int(maxiters), 1)):
+        dev = np.abs(sub - center[None, :])
+        if noise is not None:
+            spread = noise.sigma(center, n)
+        elif iteration == 0:
+            spread = 1.4826 * _median_columns(dev, valid)[None, :]
+        else:
+            k = np.maximum(keep.sum(axis=0), 2)
+            spread = np.sqrt(np.where(keep, dev ** 2, 0).sum(axis=0) / (k - 1))[None, :]
+        new_keep = valid & (dev <= sigma * spread)
+        # never reject everything: keep what was valid then
         empty = ~new_keep.any(axis=0)
         if empty.any():
             new_keep[:, empty] = valid[:, empty]
-        if np.array_equal(new_keep, keep):
+        n_used = new_keep.sum(axis=0)
+        total = np.where(new_keep, sub, 0).sum(axis=0, dtype=np.float64)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            center = (total / n_used).astype(np.float32)
+        if iteration > 0 and np.array_equal(new_keep, keep):
             break
         keep = new_keep
-    n_used = keep.sum(axis=0)
-    total = np.where(keep, sub, 0).sum(axis=0, dtype=np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = total / n_used
-    return mean.astype(np.float32), n_used
+    return center, keep.sum(axis=0)
 
 
 def _clipped_mean(stack, *, sigma=3.0, maxiters=5, noise=None):
@@ -447,11 +463,11 @@ def _clipped_mean(stack, *, sigma=3.0, maxiters=5, noise=None):
     n = stack.shape[0]
     if n == 1:
         return stack[0].astype(np.float32), np.isfinite(stack[0]).astype(np.int32)
-    finite = np.isfinite(stack).all(axis=0)
     total = stack.sum(axis=0, dtype=np.float32)
+    finite = np.isfinite(total)          # a NaN or inf anywhere in the column spoils the sum
+    lo = stack.min(axis=0)
+    hi = stack.max(axis=0)
     if n >= 3:
-        lo = stack.min(axis=0)
-        hi = stack.max(axis=0)
         center = (total - lo - hi) / np.float32(n - 2)
     else:
         center = total / np.float32(n)
@@ -468,6 +484,10 @@ def _clipped_mean(stack, *, sigma=3.0, maxiters=5, noise=None):
         spread = noise.sigma(center, n)
     if spread is None:
         suspect = ~finite
+    elif noise is not None and noise.scales is None:
+        # the same noise for every frame: only the extremes can exceed the threshold
+        limit = np.float32(sigma) * spread[0]
+        suspect = ((hi - center) > limit) | ((center - lo) > limit) | ~finite
     else:
         dev = np.abs(stack - center)
         suspect = (dev > np.float32(sigma) * spread).any(axis=0) | ~finite
@@ -511,7 +531,8 @@ def _robust_std(values):
 
 
 # rms of a unit Gaussian truncated at +-4: sqrt(1 - 2*4*phi(4) / (2*Phi(4) - 1)) (analytic)
-_TRUNCATION_4SIGMA = math.sqrt(1 - 8 * math.exp(-8) / math.sqrt(2 * math.pi) / math.erf(4 / math.sqrt(2)))
+_TRUNCATION_4SIGMA = math.sqrt(1 - 8 * math.exp(-8) / math.sqrt(2 * math.pi)
+                               / math.erf(4 / math.sqrt(2)))
 
 
 def _pair_difference_std(a, b):
@@ -524,6 +545,12 @@ def _pair_difference_std(a, b):
 # ==================================================================================
 # master bias
 # ==================================================================================
+#: rows used for the read-noise measurement (1 in this many)
+_RN_ROW_STEP = 4
+#: largest block stack (bytes); block_rows is lowered for many or long frames
+_STACK_BYTES = 64 * 2 ** 20
+
+
 @dataclass(frozen=True)
 class BiasCombination:
     """A master bias.
@@ -551,7 +578,7 @@ class BiasCombination:
 
 
 def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
-                 max_read_noise_pairs=6):
+                 max_read_noise_pairs=3):
     """Combine bias frames block-wise by a sigma-clipped mean and measure the read noise.
 
     Parameters
@@ -566,7 +593,8 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     clip_iterations : int
         Maximum clipping iterations for pixels with outliers.
     block_rows : int
-        Rows combined at a time.
+        Rows combined at a time (lowered so that the block stack stays below
+        64 MiB whatever the number of frames).
     max_read_noise_pairs : int
         Disjoint frame pairs (0-1, 2-3, ...) used to measure the read noise.
 
@@ -599,12 +627,15 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
         if tuple(f.shape) != shape:
             raise CalibrationError(f"bias frame {i} has shape {tuple(f.shape)}, expected {shape}")
     n = len(frames)
-    block = max(int(block_rows), 1)
+    # at most _STACK_BYTES of stack at a time, so memory stays flat for any number of frames
+    block = max(min(int(block_rows), _STACK_BYTES // (4 * n * shape[1])), 1)
     pairs = [(i, i + 1) for i in range(0, n - 1, 2)][:max(int(max_read_noise_pairs), 0)]
     pair_ss = np.zeros(len(pairs))
     pair_count = np.zeros(len(pairs))
 
     def accumulate(j, a_rows, b_rows):
+        # every _RN_ROW_STEP-th row: millions of pixels per pair are still measured
+        a_rows, b_rows = a_rows[::_RN_ROW_STEP], b_rows[::_RN_ROW_STEP]
         std = _pair_difference_std(a_rows, b_rows) / math.sqrt(2)
         if math.isfinite(std):
             pair_ss[j] += std ** 2 * a_rows.size
@@ -614,12 +645,17 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     # depend on the block size (reads two frames, block by block)
     noise = None
     if pairs:
+        pieces = []
         for r0 in range(0, shape[0], block):
             r1 = min(r0 + block, shape[0])
-            accumulate(0, np.asarray(frames[0][r0:r1], np.float32),
-                       np.asarray(frames[1][r0:r1], np.float32))
-        if pair_count[0] > 0 and pair_ss[0] > 0:
-            noise = _Noise(math.sqrt(pair_ss[0] / pair_count[0]))
+            first = np.asarray(frames[0][r0:r1], np.float32)
+            rows = np.arange(r0, r1) % _RN_ROW_STEP == 0      # the same rows whatever the block
+            d = first[rows] - np.asarray(frames[1][r0:r1], np.float32)[rows]
+            pieces.append(d - np.median(d, axis=1, keepdims=True))
+        std = _robust_std(np.concatenate(pieces)) / math.sqrt(2)
+        if math.isfinite(std) and std > 0:
+            pair_ss[0], pair_count[0] = std ** 2, 1.0
+            noise = _Noise(std)
     out = np.empty(shape, dtype=np.float32)
     used = np.empty(shape, dtype=np.int32)
     stack = np.empty((n, min(block, shape[0]), shape[1]), dtype=np.float32)
@@ -696,7 +732,8 @@ def measure_gain(flat_a_adu, flat_b_adu, *, read_noise_adu, tile_px=32, mask=Non
     a = _as_2d_float(flat_a_adu, "flat_a_adu")
     b = _as_2d_float(flat_b_adu, "flat_b_adu")
     if a.shape != b.shape:
-        raise ValueError(f"`flat_b_adu` must have the shape of `flat_a_adu` {a.shape}, got {b.shape}")
+        raise ValueError(f"`flat_b_adu` must have the shape of `flat_a_adu` {a.shape}, "
+                         f"got {b.shape}")
     rn = _positive(read_noise_adu, "read_noise_adu", allow_zero=True)
     t = max(int(tile_px), 4)
     ny, nx = (a.shape[0] // t) * t, (a.shape[1] // t) * t
@@ -814,7 +851,7 @@ def combine_flats(frames, *, gain_e_per_adu, read_noise_adu, clip_sigma=3.0,
         raise CalibrationError(f"flat levels must be > 0, got {scales.tolist()} ADU; "
                                "expected lamp-illuminated frames")
     noise = _Noise(rn, gain, scales)
-    block = max(int(block_rows), 1)
+    block = max(min(int(block_rows), _STACK_BYTES // (4 * n * shape[1])), 1)
     out = np.empty(shape, dtype=np.float32)
     var = np.empty(shape, dtype=np.float32)
     used = np.empty(shape, dtype=np.int32)
@@ -1229,7 +1266,8 @@ def calibrate_ccd(raw_adu, *, data_section, overscan_section, orientation, gain_
     electrons = data_adu * np.float32(gain)
     var = np.float32(rn ** 2) + np.maximum(electrons, 0)
     if bias_variance_adu2 is not None:
-        var = var + np.nan_to_num(np.asarray(bias_variance_adu2, np.float32)) * np.float32(gain ** 2)
+        bias_var = np.nan_to_num(np.asarray(bias_variance_adu2, np.float32))
+        var = var + bias_var * np.float32(gain ** 2)
     if bias_mask is not None:
         mask |= np.asarray(bias_mask, dtype=MASK_DTYPE)
     if flat is not None:

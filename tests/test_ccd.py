@@ -432,7 +432,8 @@ def test_photon_transfer_gain_analytic(rng):
     gain = 2.7                                       # e-/ADU, truth of this synthetic pair
     rn_e = 5.0
     y, x = np.mgrid[0:200, 0:300]
-    light = 20000 * (0.3 + np.exp(-((x - 150) / 90.0) ** 2)) * (1 + 0.01 * rng.standard_normal((200, 300)))
+    light = 20000 * (0.3 + np.exp(-((x - 150) / 90.0) ** 2)) \
+        * (1 + 0.01 * rng.standard_normal((200, 300)))
     pair = [(rng.poisson(light * s) + rng.normal(0, rn_e, light.shape)) / gain for s in (1.0, 0.97)]
     g = ccd.measure_gain(*pair, read_noise_adu=rn_e / gain)
     assert g.gain_e_per_adu == pytest.approx(gain, rel=0.02)

@@ -65,7 +65,8 @@ def good_night(folder):
     write_raw(folder / "b1.fits", "BIAS", exptime=0.0)
     write_raw(folder / "b2.fits", "ZERO", exptime=0.0)
     write_raw(folder / "f1.fits", "FLAT", exptime=5.0)
-    write_raw(folder / "a_early.fits", "ARC", date="2026-03-14T00:10:00", extra={"LAMPS": "HgAr,Ne"})
+    write_raw(folder / "a_early.fits", "ARC", date="2026-03-14T00:10:00",
+              extra={"LAMPS": "HgAr,Ne"})
     write_raw(folder / "a_late.fits", "ARC", date="2026-03-14T03:00:00", extra={"LAMPS": "HgAr,Ne"})
     write_raw(folder / "std1.fits", "STANDARD", obj="Tarn Std 1", date="2026-03-14T00:30:00")
     write_raw(folder / "sci1.fits", "OBJECT", obj="Ridge Nebula", date="2026-03-14T02:40:00",
