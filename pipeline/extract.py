@@ -68,7 +68,9 @@ from scipy.interpolate import BSpline
 from .errors import ExtractionError
 from .maskbits import MASK_DTYPE, MaskBit
 
-__all__ = ["Extraction", "extract", "aperture_weights", "theoretical_variance"]
+__all__ = ["Extraction", "extract", "aperture_weights", "theoretical_variance", "FrameReduction",
+           "reduce_frame", "extract_frame_file", "RECTIFICATION_DEFAULTS", "FLEXURE_DEFAULTS",
+           "SKY_DEFAULTS", "TRACING_DEFAULTS", "EXTRACTION_DEFAULTS"]
 
 
 @dataclass(frozen=True)
@@ -411,7 +413,7 @@ TRACING_DEFAULTS = {"fwhm_guess_arcsec": 1.2, "snr_min": 5.0, "max_objects": 5,
 EXTRACTION_DEFAULTS = {"aperture_fwhm": 1.5, "min_half_width_px": 3.0, "profile_knot_px": 0.5,
                        "profile_wave_order": 2, "profile_smooth_px": 31, "reject_sigma": 5.0,
                        "max_iterations": 20, "profile_error_fraction": 0.02,
-                       "max_masked_profile": 0.5, "qa_figures": True}
+                       "max_masked_profile": 0.5}
 
 
 def _options(given, defaults, section):
@@ -612,3 +614,256 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
             max_masked_profile=eo["max_masked_profile"]))
     return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, sky_region, wave_corr, flex,
                           model.info, traces, half, extractions)
+
+
+# =============================================================================== FITS adapter
+#: header keywords never copied from the calibrated frame into products
+_NOT_COPIED = ("SIMPLE", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "EXTEND", "BZERO", "BSCALE",
+               "BLANK", "CHECKSUM", "DATASUM", "BUNIT", "EXTNAME", "WCSAXES", "PCOUNT", "GCOUNT",
+               "XTENSION", "LTV1", "LTV2", "LTM1_1", "LTM2_2", "DATASEC", "BIASSEC", "TRIMSEC")
+_WCS_PREFIX = ("CTYPE", "CUNIT", "CRPIX", "CRVAL", "CDELT", "CD1_", "CD2_", "PC1_", "PC2_",
+               "CROTA", "PV1_", "PV2_", "WCSNAME", "RADESYS", "SPECSYS", "LONPOLE", "LATPOLE")
+
+
+def _product_header(header):
+    """Observation keywords of the calibrated frame, without structure, WCS or provenance."""
+    from astropy.io import fits
+
+    out = fits.Header()
+    for card in header.cards:
+        key = card.keyword
+        if (not key or key in _NOT_COPIED or key.startswith(_WCS_PREFIX)
+                or key in ("COMMENT", "HISTORY", "")
+                or (key[:5] in ("INPUT", "CALIB") and key[5:].isdigit())
+                or key in ("PIPEVERS", "PIPESTEP", "CFGHASH", "DATE")):
+            continue
+        out.append(card)
+    return out
+
+
+def _read_map(path):
+    from .errors import InputFileError
+
+    try:
+        from .wavesol import load_wavelength_map
+    except ImportError:
+        load_wavelength_map = None
+    if load_wavelength_map is not None:
+        return np.asarray(load_wavelength_map(path).wave_angstrom, float)
+    from astropy.io import fits
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            data = hdul[0].data
+    except OSError as exc:
+        raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc
+    if data is None or np.ndim(data) != 2:
+        raise InputFileError(path, "PRIMARY HDU must hold the 2-D wavelength map lambda(y, x)")
+    return np.asarray(data, float)
+
+
+def _reference_from_table(path):
+    """Aperture 1 of a standard's trace table, if traced on its own."""
+    from astropy.table import Table
+
+    from .errors import InputFileError, InputFileWarning
+    from .trace import traces_from_table
+
+    import warnings
+    try:
+        table = Table.read(path, format="ascii.ecsv")
+    except (OSError, ValueError) as exc:
+        raise InputFileError(path, f"cannot be read as an ECSV trace table ({exc})") from exc
+    traces = traces_from_table(table)
+    own = [t for t in traces if t.mode == "own"]
+    if not own:
+        warnings.warn(f"{path}: no trace fitted on its own; faint objects keep a fixed row",
+                      InputFileWarning)
+        return None, ""
+    name = str(table["frame_id"][0]) if len(table) else ""
+    return own[0], name
+
+
+def _as_path_or_none(value):
+    if value is None:
+        return None
+    if isinstance(value, (list, tuple)):
+        value = value[0] if value else None
+    return None if value in (None, "") else str(value)
+
+
+def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, spectra,
+                       qa_rectified, qa_spectra, frame_id, frame_type, setup,
+                       spatial_scale_arcsec_per_px, reference=None, rectification=None,
+                       flexure=None, sky=None, tracing=None, extraction=None):
+    """Adapter of the ``extract_spectra`` rule: one calibrated frame to its 1-D products.
+
+    Parameters
+    ----------
+    frame : str
+        Calibrated frame (``calibrated/{frame}.fits``).
+    wavelength : str
+        Wavelength solution of the nearest arc (PRIMARY = dense λ(y, x) map).
+    reference : str, optional
+        Trace table of the setup's standard star (its aperture 1 gives the
+        shape that faint objects borrow).
+    rectified : str
+        Output: rectified, sky-subtracted frame (frames layout + SKY, SKYVAR,
+        BKGVAR, SIGVARF, SKYREG extensions; FITS WCS AWAV x SLITPOS).
+    flexure_table, traces : str
+        Outputs: ECSV tables of the flexure lines and of the traces.
+    spectra : str
+        Output folder: one 1-D FITS per object (:mod:`pipeline.spectra`) and
+        ``extraction.ecsv``.
+    qa_rectified, qa_spectra : str
+        Output PNGs.
+    frame_id, frame_type, setup : str
+        From the night inventory.
+    spatial_scale_arcsec_per_px : float
+        Unbinned slit scale (config instrument); multiplied by BINSPAT.
+    rectification, flexure, sky, tracing, extraction : dict
+        Config sections.
+    """
+    import warnings
+    from pathlib import Path
+
+    from astropy.io import fits
+    from astropy.table import Table
+
+    from . import provenance, skylines
+    from .errors import InputFileError, InputFileWarning
+    from .frames import Frame, read_frame, write_frame
+    from .qa_extraction import plot_rectified_frame, plot_spectra
+    from .rectify import slit_wcs_cards
+    from .spectra import LISTING_COLUMNS, sanitise_name, write_spectrum
+    from .trace import traces_to_table
+
+    fo = _options(flexure, FLEXURE_DEFAULTS, "flexure")
+    cal = read_frame(frame)
+    wave_map = _read_map(wavelength)
+    if wave_map.shape != cal.shape:
+        raise InputFileError(wavelength, f"wavelength map shape {wave_map.shape} differs from "
+                             f"the calibrated frame {frame} {cal.shape}; expected the solution "
+                             "of an arc of the same setup and binning")
+    binspat = cal.header.get("BINSPAT")
+    if binspat is None:
+        warnings.warn(f"{frame}: keyword BINSPAT missing; expected the binning along the slit; "
+                      "assuming 1", InputFileWarning)
+        binspat = 1
+    scale = float(spatial_scale_arcsec_per_px) * float(binspat)
+    lines = skylines.load_sky_lines(fo["line_list"], verified_only=not fo["use_unverified_lines"])
+    reference_path = _as_path_or_none(reference)
+    ref_trace, ref_name = (_reference_from_table(reference_path) if reference_path
+                           else (None, ""))
+
+    red = reduce_frame(cal.data, cal.variance, cal.mask, wave_map,
+                       line_wave_angstrom=np.asarray(lines["wavelength_air_angstrom"], float),
+                       line_species=[str(x) for x in lines["species"]],
+                       spatial_scale_arcsec_per_px=scale, reference_trace=ref_trace,
+                       reference_name=ref_name, rectification=rectification, flexure=fo,
+                       sky=sky, tracing=tracing, extraction=extraction)
+    grid = red.rectified.grid
+    ny = red.rectified.data.shape[0]
+    base = _product_header(cal.header)
+    obj_name = str(cal.header.get("OBJECT", frame_id))
+    base["SETUP"] = (str(setup), "instrument setup id (night inventory)")
+    base["FRAMEID"] = (str(frame_id), "frame id of the exposure")
+    base["FRAMETYP"] = (str(frame_type), "standard or science")
+    flex = red.flexure
+    base["FLEXPIX"] = (round(float(flex.shift_px), 5), "flexure shift applied, px (+ = to larger x)")
+    base["FLEXERR"] = (round(float(flex.shift_err_px), 5) if np.isfinite(flex.shift_err_px)
+                       else -1.0, "its 1-sigma error, px (-1 = not measured)")
+    base["FLEXKMS"] = (round(float(flex.shift_kms), 4), "flexure shift as a velocity, km/s")
+    base["FLEXSTAT"] = (flex.status, "flexure measurement status")
+    base["SKYSUB"] = (True, "night sky subtracted (Kelson 2003 b-spline)")
+    base["VARCORR"] = (round(float(red.rectified.info["variance_correlation"]), 4),
+                       "var of long sums along x / sum of pixel vars")
+    a_var, b_var = red.sky_info["variance_coefficients"]
+    base["VARRN"] = (round(float(a_var), 4), "variance model: constant term, e2")
+    base["VARGAIN"] = (round(float(b_var), 5), "variance model: e2 per e of signal")
+    inputs = [frame, wavelength] + ([reference_path] if reference_path else [])
+
+    # -- rectified frame
+    rhdr = base.copy()
+    for card in grid.wcs_cards(axis=1) + slit_wcs_cards(ny, scale, axis=2):
+        rhdr[card[0]] = card[1:]
+    rhdr["WCSAXES"] = 2
+    rhdr.setdefault("SPECSYS", "TOPOCENT")
+    provenance.stamp(rhdr, inputs=inputs, calibrations=[wavelength])
+
+    def image(arr, name, comment, dtype=np.float32):
+        h = fits.Header()
+        for card in grid.wcs_cards(axis=1) + slit_wcs_cards(ny, scale, axis=2):
+            h[card[0]] = card[1:]
+        h["COMMENT"] = comment
+        return fits.ImageHDU(np.asarray(arr, dtype=dtype), header=h, name=name)
+
+    extra = [image(red.sky, "SKY", "sky model subtracted from PRIMARY, electron"),
+             image(red.sky_variance, "SKYVAR", "variance of the sky model (correlated along "
+                   "the slit), electron2"),
+             image(red.background_variance, "BKGVAR", "noise-free variance of read noise and "
+                   "sky, electron2"),
+             image(red.signal_variance_factor, "SIGVARF", "variance per electron of object "
+                   "signal"),
+             image(red.sky_region, "SKYREG", "1 = pixel used as sky", dtype=np.uint8)]
+    write_frame(Frame(red.rectified.data, red.rectified.variance, red.rectified.mask, rhdr,
+                      cal.unit), rectified, extra_hdus=extra)
+
+    # -- flexure and trace tables
+    ftab = Table(flex.lines, copy=True) if len(flex.lines.colnames) else Table()
+    ftab.meta.update({"frame_id": str(frame_id), "shift_px": float(flex.shift_px),
+                      "shift_err_px": float(flex.shift_err_px), "shift_kms": float(flex.shift_kms),
+                      "status": flex.status, "n_used": int(flex.info.get("n_used", 0)),
+                      "description": "night-sky lines fitted for the flexure shift "
+                                     "(pipeline.flexure)"})
+    Path(flexure_table).parent.mkdir(parents=True, exist_ok=True)
+    ftab.write(flexure_table, format="ascii.ecsv", overwrite=True)
+    ttab = traces_to_table(red.traces, frame_id=str(frame_id), object_name=obj_name)
+    ttab.write(traces, format="ascii.ecsv", overwrite=True)
+
+    # -- 1-D products
+    out_dir = Path(spectra)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    rows = []
+    stem = sanitise_name(obj_name)
+    wave = grid.centres_angstrom()
+    for ap, (tr, h, ex) in enumerate(zip(red.traces, red.half_widths_px, red.extractions),
+                                     start=1):
+        name = f"{stem}_ap{ap}.fits"
+        hdr = base.copy()
+        hdr["APERTURE"] = (ap, "aperture number (1 = highest S/N)")
+        hdr["APNUM"] = (len(red.traces), "objects traced on this frame")
+        hdr["APCENPX"] = (round(tr.centre_px, 4), "trace centre at APREFWL, rectified row")
+        hdr["APCENAS"] = (round((tr.centre_px - 0.5 * (ny - 1)) * scale, 4),
+                          "same, arcsec from the slit centre")
+        hdr["APREFWL"] = (round(tr.reference_wave_angstrom, 3), "reference wavelength, Angstrom")
+        hdr["APHWPX"] = (round(float(h), 4), "boxcar half width, rows")
+        hdr["APFWHMPX"] = (round(float(tr.fwhm_px), 4), "spatial FWHM, rows")
+        hdr["TRCMODE"] = (tr.mode, "own, reference (offset fitted) or fixed")
+        hdr["TRCREF"] = (str(tr.reference)[:60], "reference of the trace shape")
+        hdr["EXTMETH"] = ("optimal", "HDU 0; boxcar in BOXFLUX")
+        hdr["SNRMED"] = (round(float(ex.info["snr_median"]), 3), "median S/N per pixel, optimal")
+        hdr["NREJECT"] = (int(ex.info["n_rejected"]), "pixels rejected in the profile fit")
+        provenance.stamp(hdr, inputs=inputs, calibrations=[wavelength])
+        write_spectrum(out_dir / name, grid, hdr, flux=ex.flux, variance=ex.variance,
+                       mask=ex.mask, boxcar_flux=ex.boxcar_flux,
+                       boxcar_variance=ex.boxcar_variance, boxcar_mask=ex.boxcar_mask,
+                       sky=ex.sky, trace_px=ex.trace_px)
+        good = ex.mask == 0
+        rows.append([str(frame_id), obj_name, ap, name, tr.centre_px,
+                     (tr.centre_px - 0.5 * (ny - 1)) * scale, tr.fwhm_px, tr.mode,
+                     float(ex.info["snr_median"]), float(np.sum(ex.flux[good])), "ok"])
+    listing = Table(rows=rows or None, names=LISTING_COLUMNS,
+                    dtype=[str, str, int, str, float, float, float, str, float, float, str])
+    listing.meta.update({"frame_id": str(frame_id), "setup": str(setup),
+                         "wavelength_start_angstrom": float(wave[0]),
+                         "description": "1-D spectra written for this frame (pipeline.spectra)"})
+    listing.write(out_dir / "extraction.ecsv", format="ascii.ecsv", overwrite=True)
+    if not red.traces:
+        from .trace import TracingWarning
+        warnings.warn(f"{frame}: no object above the detection threshold; no spectrum written",
+                      TracingWarning)
+
+    title = f"{frame_id}  {obj_name}  ({frame_type}, {setup})"
+    plot_rectified_frame(red, qa_rectified, title=title, arcsec_per_px=scale)
+    plot_spectra(red, qa_spectra, title=title)
+    return red

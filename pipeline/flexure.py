@@ -85,7 +85,7 @@ def _empty_table():
     return Table(names=("species", "wavelength_ref_angstrom", "n_lines",
                         "wavelength_measured_angstrom", "shift_angstrom", "shift_px",
                         "shift_err_px", "shift_kms", "snr", "used", "status"),
-                 dtype=(str, float, int, float, float, float, float, float, float, bool, str))
+                 dtype=("U40", float, int, float, float, float, float, float, float, bool, "U40"))
 
 
 def measure_flexure(data, variance, mask, wave_map, sky_pixels, line_wave_angstrom, *,

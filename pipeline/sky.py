@@ -41,7 +41,9 @@ Choices
 * Robustness to cosmic rays and residual defects: pixels further than
   ``reject_sigma`` from the model (in units of the model noise) are left out
   and the fit repeated, until the rejected set stops changing; they get the
-  SKY_OUTLIER bit.
+  SKY_OUTLIER bit. A wavelength interval that would lose more than 20 % of its
+  pixels keeps them all (the model is wrong there, not the pixels), so a
+  bright line core can never be rejected away.
 * The model's own variance ``b(λ, y)^T C b(λ, y)`` (C = inverse of the normal
   matrix) is computed exactly from the band of C (Hutchinson & de Hoog 1985,
   Numer. Math. 47, 99, recursion for the band of the inverse of a banded
@@ -229,7 +231,8 @@ def _illumination(rows_u, d_u, base_u, var_u, keep, ny, *, bridge_rows=20, min_r
 
     Each row's scale is the weighted least-squares ratio of its sky pixels to
     the wavelength model (rows with less than ``min_row_fraction`` of the
-    typical number of sky pixels are not used). The ratios are smoothed by a
+    typical number of sky pixels are not used; rows below 90 % of the median
+    level, the slit ends, keep their own ratio). The other ratios are smoothed by a
     cubic smoothing spline (:func:`scipy.interpolate.make_smoothing_spline`,
     weights = inverse variances of the ratios, smoothing chosen by generalised
     cross-validation). Across a gap (rows under an object) a weighted straight
@@ -251,10 +254,16 @@ def _illumination(rows_u, d_u, base_u, var_u, keep, ny, *, bridge_rows=20, min_r
         return np.ones(ny)
     ratio = num[has] / den[has]
     wts = den[has] / np.mean(den[has])
-    try:
-        at_data = make_smoothing_spline(ys.astype(float), ratio, w=wts)(ys.astype(float))
-    except (ValueError, np.linalg.LinAlgError):
-        at_data = np.full(ys.size, float(np.sum(num) / np.sum(den)))
+    # rows far below the typical level (slit ends, vignetted corners) keep their own
+    # ratio: a steep edge would force the smoothing to follow noise everywhere
+    bright = ratio > 0.9 * np.median(ratio)
+    at_data = ratio.copy()
+    if bright.sum() >= 6:
+        try:
+            at_data[bright] = make_smoothing_spline(ys[bright].astype(float), ratio[bright],
+                                                    w=wts[bright])(ys[bright].astype(float))
+        except (ValueError, np.linalg.LinAlgError):
+            at_data[bright] = float(np.sum(num[has][bright]) / np.sum(den[has][bright]))
     rows = np.arange(ny, dtype=float)
     illum = np.interp(rows, ys, at_data)
     # bridge every interior gap with a local weighted straight line
@@ -267,7 +276,7 @@ def _illumination(rows_u, d_u, base_u, var_u, keep, ny, *, bridge_rows=20, min_r
             coef = np.polyfit(ys[near].astype(float), ratio[near], 1, w=np.sqrt(wts[near]))
             inside = slice(lo_edge + 1, hi_edge)
             illum[inside] = np.polyval(coef, rows[inside])
-    illum = np.where(illum > 0.05, illum, 0.05)
+    illum = np.clip(illum, 0.0, None)
     return illum / (np.sum(den[has] * illum[has]) / np.sum(den[has]))
 
 
@@ -360,33 +369,45 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.8,
         raise ValueError(f"{n_usable} usable sky pixels for {n_par} sky parameters")
 
     rows_u = np.broadcast_to(np.arange(ny)[:, None], data.shape)[usable]
+    interval = np.clip(np.searchsorted(bp, lam_u) - 1, 0, bp.size - 2)
+    n_per_interval = np.bincount(interval, minlength=bp.size - 1)
     illum_rows = np.ones(ny)
     illum_u = np.ones(n_usable)
     weight_var = v_u.copy()
     keep = np.ones(n_usable, bool)
     n_iter = 0
-    coef = cb = m = None
     for n_iter in range(1, max_iterations + 1):
-        w = np.where(keep, illum_u ** 2 / weight_var, 0.0)
-        ab, rhs, m = _normal_band(cols, vals, w, d_u / illum_u, n_par)
+        lit = illum_u > 1e-3  # rows without light carry no information on the spectrum
+        w = np.where(keep & lit, illum_u ** 2 / weight_var, 0.0)
+        ab, rhs, m = _normal_band(cols, vals, w, np.where(lit, d_u / np.where(lit, illum_u, 1.0),
+                                                         0.0), n_par)
         ab[m] += 1e-10 * np.max(ab[m]) + 1e-300
         cb = cholesky_banded(ab, lower=False)
         coef = cho_solve_banded((cb, False), rhs)
         base_u = np.sum(vals * coef[cols], axis=1)
-        if fit_illumination:
-            illum_rows = _illumination(rows_u, d_u, base_u, weight_var, keep, ny)
-            illum_u = illum_rows[rows_u]
-        model_u = base_u * illum_u
+        model_u = base_u * illum_u  # the model of this fit
         weight_var = a_var + b_var * np.clip(model_u, 0.0, None)
         z = (d_u - model_u) / np.sqrt(weight_var)
         new_keep = np.abs(z) <= reject_sigma
-        if n_iter > 2 and np.array_equal(new_keep, keep):
-            keep = new_keep
-            break
+        # a wavelength interval losing more than 20 % of its points has a model
+        # problem, not cosmic rays: keep them all
+        lost = np.bincount(interval, weights=(~new_keep).astype(float),
+                           minlength=bp.size - 1) > 0.2 * n_per_interval
+        new_keep |= lost[interval]
+        old_illum = illum_rows
+        if fit_illumination:
+            illum_rows = _illumination(rows_u, d_u, base_u, weight_var, new_keep, ny)
+            illum_u = illum_rows[rows_u]
+        converged = (np.array_equal(new_keep, keep)
+                     and np.max(np.abs(illum_rows - old_illum)) < 1e-4)
         keep = new_keep
+        if converged and n_iter > 1:
+            break
     # final fit with the last weights, illumination and rejected set (for the covariance)
-    w = np.where(keep, illum_u ** 2 / weight_var, 0.0)
-    ab, rhs, m = _normal_band(cols, vals, w, d_u / illum_u, n_par)
+    lit = illum_u > 1e-3
+    w = np.where(keep & lit, illum_u ** 2 / weight_var, 0.0)
+    ab, rhs, m = _normal_band(cols, vals, w, np.where(lit, d_u / np.where(lit, illum_u, 1.0), 0.0),
+                              n_par)
     ab[m] += 1e-10 * np.max(ab[m]) + 1e-300
     cb = cholesky_banded(ab, lower=False)
     coef = cho_solve_banded((cb, False), rhs)
