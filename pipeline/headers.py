@@ -206,17 +206,16 @@ def read_raw_header(path, *, extension=0, check_size=True):
         with warnings.catch_warnings():
             # astropy warns about short files itself; the size check below says it once
             warnings.simplefilter("ignore", AstropyUserWarning)
-            hdul = fits.open(path, memmap=False, lazy_load_hdus=True)
-        with hdul:
-            try:
-                index, hdu = _hdu_by_name_or_index(hdul, extension)
-            except (KeyError, IndexError):
-                raise InputFileError(
-                    path, f"HDU {extension!r} missing; expected the raw pixels there "
-                    "(set instrument.pixel_extension in the config)") from None
-            header = hdu.header
-            primary = hdul[0].header
-            info = hdul.fileinfo(index)
+            with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+                try:
+                    index, hdu = _hdu_by_name_or_index(hdul, extension)
+                except (KeyError, IndexError):
+                    raise InputFileError(
+                        path, f"HDU {extension!r} missing; expected the raw pixels there "
+                        "(set instrument.pixel_extension in the config)") from None
+                header = hdu.header
+                primary = hdul[0].header
+                info = hdul.fileinfo(index)
     except InputFileError:
         raise
     except Exception as exc:  # astropy raises OSError, ValueError, TypeError... on junk
