@@ -35,6 +35,7 @@ STEPS = {
     "calibrate_frame": ("pipeline.ccd", "calibrate_frame_file"),
     "find_arc_lines": ("pipeline.arclines", "find_arc_lines_file"),
     "solve_wavelength": ("pipeline.wavesol", "solve_wavelength_file"),
+    "extract_spectra": ("pipeline.extract", "extract_frame_file"),
     "fit_sensitivity": ("pipeline.fluxcal", "fit_sensitivity_file"),
     "flux_calibrate": ("pipeline.fluxcal", "flux_calibrate_file"),
     "manifest": ("pipeline.manifest", "write_manifest_file"),

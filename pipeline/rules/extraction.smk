@@ -1,0 +1,70 @@
+# From calibrated 2-D frames to 1-D spectra (pipeline/extract.py with rectify.py, flexure.py,
+# sky.py, trace.py, spectra.py, qa_extraction.py): one job per standard or science frame.
+# Objects are masked and the sky fitted on the native pixels, the flexure measured on the
+# night-sky lines, the sky-subtracted frame rectified, the objects traced and extracted.
+# Science frames borrow the trace shape of the setup's standard star (nearest in time) for
+# their faint objects, so their jobs wait for the standard's.
+import math as _ex_math
+import re as _ex_re
+
+EXTRACTION_FRAMES = sorted({rec.frame_id for setup in NIGHT.setups()
+                            for rec in NIGHT.frames("standard", setup=setup)
+                            + NIGHT.frames("science", setup=setup)})
+_EX_PATTERN = "|".join(_ex_re.escape(f) for f in EXTRACTION_FRAMES) or r"(?!x)x"
+
+
+def extraction_reference(frame_id):
+    """Trace table of the standard whose shape a science frame's faint objects borrow ([] if none)."""
+    rec = NIGHT.record(frame_id)
+    if rec.frame_type != "science" or not config.get("tracing", {}).get("use_standard_reference",
+                                                                       True):
+        return []
+    standards = NIGHT.standards_for(rec.setup)
+    if not standards:
+        return []
+
+    def gap(std):
+        dt = abs(std.mjd - rec.mjd)
+        return (dt if _ex_math.isfinite(dt) else _ex_math.inf, std.frame_id)
+
+    return out("qa", f"{min(standards, key=gap).frame_id}_traces.ecsv")
+
+
+def extraction_products(frame_id):
+    """Final outputs of the extraction of one standard or science frame."""
+    return [out("rectified", f"{frame_id}.fits"), out("qa", f"{frame_id}_flexure.ecsv"),
+            out("qa", f"{frame_id}_traces.ecsv"), out("spectra", frame_id),
+            out("qa", f"{frame_id}_rectified.png"), out("qa", f"{frame_id}_spectra.png")]
+
+
+rule extract_spectra:
+    input:
+        frame=out("calibrated", "{frame}.fits"),
+        wavelength=lambda wc: out("wavelength",
+                                  f"{NIGHT.nearest_arc(wc.frame).frame_id}_solution.fits"),
+        reference=lambda wc: extraction_reference(wc.frame),
+    output:
+        rectified=out("rectified", "{frame}.fits"),
+        flexure_table=out("qa", "{frame}_flexure.ecsv"),
+        traces=out("qa", "{frame}_traces.ecsv"),
+        spectra=directory(out("spectra", "{frame}")),
+        qa_rectified=report(out("qa", "{frame}_rectified.png"), category="Extraction",
+                            caption="captions/extraction_rectified.rst"),
+        qa_spectra=report(out("qa", "{frame}_spectra.png"), category="Extraction",
+                          caption="captions/extraction_spectra.rst"),
+    wildcard_constraints:
+        frame=_EX_PATTERN,
+    params:
+        frame_id=lambda wc: wc.frame,
+        frame_type=lambda wc: NIGHT.record(wc.frame).frame_type,
+        setup=lambda wc: NIGHT.record(wc.frame).setup,
+        spatial_scale_arcsec_per_px=INSTRUMENT["spatial_scale_arcsec_per_px"],
+        rectification=config.get("rectification", {}),
+        flexure=config.get("flexure", {}),
+        sky=config.get("sky", {}),
+        tracing=config.get("tracing", {}),
+        extraction=config.get("extraction", {}),
+    log:
+        log_path("extract_spectra", "{frame}"),
+    script:
+        RUN_STEP
