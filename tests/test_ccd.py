@@ -465,3 +465,90 @@ def test_options_and_coercers():
         ccd.correct_and_trim(np.zeros(5), data_section=parse_section("[1:2,1:1]"))
     with pytest.raises(CalibrationError, match="no bias frame"):
         ccd.combine_bias([])
+
+
+def test_adapters_other_layout(tmp_path, rng):
+    """Dispersion along FITS axis 1, wavelength decreasing, prescan at the start of each row,
+    pixels in an image extension, sections/gain/read noise from config values, gzip input.
+
+    Truth: the arrays written here (analytic design)."""
+    ny, nx, npre = 48, 160, 8                    # slit rows, dispersion columns, prescan
+    gain, rn_e = 2.0, 5.0
+    instrument = {"pixel_extension": "SCI",
+                  "sections": {"data": {"keyword": None,
+                                        "value": f"[{npre + 1}:{npre + nx},1:{ny}]"},
+                               "overscan": {"keyword": None, "value": f"[1:{npre},1:{ny}]"}},
+                  "gain_e_per_adu": {"keyword": None, "value": gain},
+                  "read_noise_e": {"keyword": None, "value": rn_e},
+                  "saturation_adu": 60000.0, "dispersion_axis": 1,
+                  "wavelength_increases_with_pixel": False, "binning_keyword": "CCDSUM"}
+    wave_rank = np.arange(nx)[::-1]              # raw column c holds wavelength rank nx-1-c
+    y = np.arange(ny)[:, None]
+    resp = 1 + 0.01 * rng.standard_normal((ny, nx))
+    illum = np.where((y >= 4) & (y < 44), 1.0, 0.0) * np.ones((1, nx))
+    lamp = 30000.0 * (0.5 + 0.5 * wave_rank / nx)[None, :]
+
+    def raw_frame(electrons, kind, path):
+        level = 500.0 + 3.0 * np.sin(np.arange(ny) / 5.0)      # per raw row, shared with prescan
+        data = rng.poisson(np.clip(electrons, 0, None)) + rng.normal(0, rn_e, (ny, nx))
+        adu = np.empty((ny, npre + nx))
+        adu[:, :npre] = level[:, None] + rng.normal(0, rn_e / gain, (ny, npre))
+        adu[:, npre:] = level[:, None] + data / gain
+        adu = np.clip(np.round(adu), 0, 65535).astype(np.uint16)
+        primary = fits.PrimaryHDU()
+        primary.header["IMAGETYP"] = kind
+        primary.header["CCDSUM"] = "1 1"
+        hdul = fits.HDUList([primary, fits.ImageHDU(adu, name="SCI")])
+        if str(path).endswith(".gz"):
+            import gzip
+            import io
+            buf = io.BytesIO()
+            hdul.writeto(buf)
+            Path(path).write_bytes(gzip.compress(buf.getvalue()))
+        else:
+            hdul.writeto(path)
+        return str(path)
+
+    biases = [raw_frame(np.zeros((ny, nx)), "BIAS", tmp_path / f"b{i}.fits") for i in range(4)]
+    flat_e = lamp * illum * resp
+    flats = []
+    for i in range(3):
+        e = flat_e.copy()
+        if i == 1:
+            e[20:22, 50:53] = 2e6                 # saturates (clipped at 65535 ADU)
+        flats.append(raw_frame(e, "FLAT", tmp_path / f"f{i}.fits"))
+    line_cols = [30, 75, 120]                    # raw data columns of three arc lines
+    arc_e = np.zeros((ny, nx))
+    for c in line_cols:
+        arc_e[:, c] = 20000.0 * illum[:, c] * resp[:, c]
+    arc = raw_frame(arc_e, "ARC", tmp_path / "arc.fits.gz")
+    out = tmp_path / "out"
+    ccd.make_master_bias_file(frames=biases, master=str(out / "b.fits"), qa=str(out / "b.ecsv"),
+                              instrument=instrument)
+    ccd.make_master_flat_file(frames=flats, bias=str(out / "b.fits"), master=str(out / "f.fits"),
+                              qa=str(out / "f.ecsv"), instrument=instrument)
+    # the configured gain (the measured one rests on only 5 tiles of this small frame)
+    ccd.calibrate_frame_file(raw=arc, bias=str(out / "b.fits"), flat=str(out / "f.fits"),
+                             calibrated=str(out / "arc.fits"), frame_type="arc",
+                             instrument=instrument, calibration={"use_measured_gain": False})
+    mb, mf, cal = (read_frame(out / n) for n in ("b.fits", "f.fits", "arc.fits"))
+    h = cal.header
+    assert (h["ORIENT_T"], h["ORIENT_X"], h["TRIM_X0"], h["TRIM_Y0"]) == (False, True, npre, 0)
+    assert (h["BINSPEC"], h["BINSPAT"]) == (1, 1)
+    assert cal.shape == (ny, nx) and mb.shape == (ny, nx)
+    assert abs(np.mean(mb.data)) < 0.2                           # overscan removed the level
+    # lines at canonical x = nx - 1 - raw column (wavelength increases with x)
+    profile = np.median(cal.data[10:40], axis=0)
+    found = sorted(np.argsort(profile)[-3:])
+    assert found == sorted(nx - 1 - c for c in line_cols)
+    # electrons: the flat-fielded line equals the injected 20000 e- (Poisson 0.7%, 30 rows)
+    lines = cal.data[10:40][:, found]
+    assert np.mean(lines) == pytest.approx(20000.0, rel=0.01)
+    # the saturated patch of one flat is rejected, the other two flats fill it
+    patch = mf.data[20:22, nx - 53:nx - 50]
+    truth = resp[20:22, 50:53][:, ::-1] / resp[4:44].mean()
+    np.testing.assert_allclose(patch, truth, rtol=0.02)
+    assert (mf.mask[:4] & MaskBit.UNILLUMINATED).all()
+    assert (mf.mask[44:] & MaskBit.UNILLUMINATED).all()
+    assert h["GAIN"] == gain and h["GAINSRC"] == "configured"
+    assert mf.header["GAINMEAS"] == pytest.approx(gain, rel=0.05)
