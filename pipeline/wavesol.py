@@ -483,17 +483,17 @@ def match_lines(x_detected_px, x_predicted_px, *, tolerance_px):
 
 
 def fit_grating_parameters(x_px, x_err_px, wave_angstrom, model, *, correction_terms=(),
-                           domain_px=None, center_prior_px=10.0, fit_center=True,
-                           loss_scale_px=0.3, keep=None):
+                           domain_px=None, center_prior_px=10.0, center_nominal_px=None,
+                           fit_center=True, loss_scale_px=0.3, keep=None):
     """Least-squares fit of tilt, focal length, camera-axis pixel (and correction terms).
 
     The solution is ``lambda(x) = lambda_model(x) + sum_k c_k T_k(u)`` with
     Chebyshev polynomials ``T_k`` of the listed degrees over ``domain_px``. The
     residual of line ``i`` is ``(lambda_i - lambda(x_i)) / (|d lambda/dx| s_i)``
     (pixels over their uncertainty), minimised with a soft-L1 loss of scale
-    ``loss_scale_px``, plus ``((x_c - x_c0) / center_prior_px)^2``: the camera-axis
-    position is nearly degenerate with the tilt, so a weak prior keeps it near
-    the nominal value. The physical model already has a shift, a scale and a
+    ``loss_scale_px``, plus ``((x_c - x_c0) / center_prior_px)^2`` with
+    ``x_c0 = center_nominal_px``: the camera-axis position is nearly degenerate
+    with the tilt, so a weak prior keeps it near the nominal value. The physical model already has a shift, a scale and a
     curvature, so the correction should start at degree 3.
 
     Parameters
@@ -506,6 +506,9 @@ def fit_grating_parameters(x_px, x_err_px, wave_angstrom, model, *, correction_t
     domain_px : (float, float)
         Domain of the Chebyshev series.
     center_prior_px : float
+        1-sigma width of the prior on the camera-axis pixel.
+    center_nominal_px : float, optional
+        Centre of that prior (default: the starting model's ``center_px``).
     fit_center : bool
     loss_scale_px : float
     keep : ndarray of bool, optional
@@ -533,6 +536,7 @@ def fit_grating_parameters(x_px, x_err_px, wave_angstrom, model, *, correction_t
     basis = np.stack([cheb.chebval(u, np.eye(n_coef)[k]) for k in terms], axis=1) if terms \
         else np.zeros((x.size, 0))
     c0 = model.center_px
+    prior_offset = 0.0 if center_nominal_px is None else c0 - float(center_nominal_px)
     t_scale = 0.01
     f_scale = model.focal_length_mm * 1e-3
     n_phys = 3 if fit_center else 2
@@ -548,7 +552,7 @@ def fit_grating_parameters(x_px, x_err_px, wave_angstrom, model, *, correction_t
         lam = m.wavelength(x) + basis @ p[n_phys:]
         r = (w - lam) / (disp0 * s)
         if fit_center:
-            r = np.append(r, p[2] / center_prior_px)
+            r = np.append(r, (p[2] + prior_offset) / center_prior_px)
         return r
 
     def jac(p):
@@ -606,9 +610,10 @@ def _solution_pixels(model, coeffs, domain, wave_angstrom):
 def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_deg=0.6,
              focal_range_fraction=0.035, search_tolerance_px=1.5, match_tolerance_px=2.0,
              final_tolerance_px=1.0, isolation_fwhm=2.0, faint_neighbour_ratio=0.03,
-             merge_fwhm=0.1, center_prior_px=10.0, correction_degree=3, correction_min_degree=3,
+             merge_fwhm=0.1, center_prior_mm=0.15, correction_degree=3, correction_min_degree=3,
              clip_sigma=3.0, clip_iterations=5, centroid_floor_px=0.01, min_lines=8,
-             max_rms_px=0.3, min_matched_fraction=0.3, ambiguity_ratio=0.8, n_search_lines=40):
+             max_rms_px=0.3, min_matched_fraction=0.3, ambiguity_ratio=0.8, n_search_lines=40,
+             warn_line_coverage_fraction=0.5):
     """Identify the arc lines and fit the 1-D wavelength solution of the reference row.
 
     Parameters
@@ -637,8 +642,9 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
     merge_fwhm : float
         Same-species lines closer than this many FWHM are merged into one line at
         their intensity-weighted wavelength (:func:`merge_unresolved`).
-    center_prior_px : float
-        1-sigma prior width on the camera-axis pixel.
+    center_prior_mm : float
+        1-sigma prior width on the position of the camera axis on the detector, in mm
+        (divided by the binned pixel size for the fit).
     correction_degree : int
         Highest degree of the Chebyshev correction (0-7).
     correction_min_degree : int
@@ -659,6 +665,10 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
         of the best one.
     n_search_lines : int
         Strongest detected lines used in the vote.
+    warn_line_coverage_fraction : float
+        Warn (:class:`~pipeline.errors.ArcQualityWarning`) when the used lines span
+        less than this fraction of the detector: beyond them the solution is an
+        extrapolation of the grating model.
 
     Returns
     -------
@@ -696,6 +706,7 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
         raise WavelengthSolutionError(
             f"only {len(cand)} listed lines fall within {lo:.0f}-{hi:.0f} A for {setup}; "
             "check LAMPS, instrument.lamps and the grating tilt")
+    center_prior_px = float(center_prior_mm) / nominal.pixel_mm
     fwhm_px = float(lines.info.get("fwhm_median_px", np.nanmedian(lines.fwhm_px)))
     disp = abs(float(nominal.dispersion(nominal.center_px)))
     cand = merge_unresolved(cand, max_separation_angstrom=merge_fwhm * fwhm_px * disp)
@@ -732,7 +743,8 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
             d_sel, p_sel = det_clean[d_i], cand_use[p_i]
             model, _, errs, _ = fit_grating_parameters(
                 x_all[d_sel], sig_px[d_sel], cand.wave_air_angstrom[p_sel], model,
-                center_prior_px=center_prior_px, fit_center=d_i.size >= 6)
+                center_prior_px=center_prior_px, center_nominal_px=nominal.center_px,
+                fit_center=d_i.size >= 6)
         d_i, p_i = match_lines(x_all[det_clean], model.pixel(cand.wave_air_angstrom[cand_use]),
                                tolerance_px=0.5 * match_tolerance_px)
         return model, errs, d_i, p_i
@@ -780,7 +792,8 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
         for _k in range(max(1, int(clip_iterations))):
             model_k, coeffs_k, errs_k, _ = fit_grating_parameters(
                 x_all[d_sel], sig_px[d_sel], wave, model, correction_terms=terms,
-                domain_px=domain, center_prior_px=center_prior_px, keep=keep)
+                domain_px=domain, center_prior_px=center_prior_px,
+                center_nominal_px=nominal.center_px, keep=keep)
             lam = model_k.wavelength(x_all[d_sel]) + cheb.chebval(_to_unit(x_all[d_sel], domain),
                                                                    coeffs_k)
             norm = (wave - lam) / (np.abs(model_k.dispersion(x_all[d_sel])) * sig_px[d_sel])
@@ -834,6 +847,12 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
     if n_rej > keep.size / 3:
         warnings.warn(f"{n_rej} of {keep.size} matched arc lines rejected by clipping",
                       ArcQualityWarning, stacklevel=2)
+    span = (float(x_m[keep].min()), float(x_m[keep].max()))
+    coverage = (span[1] - span[0]) / max(nx - 1, 1)
+    if coverage < warn_line_coverage_fraction:
+        warnings.warn(f"the {n_used} arc lines used span only pixels {span[0]:.0f}-{span[1]:.0f} "
+                      f"({100 * coverage:.0f} % of the detector); beyond them the wavelengths are "
+                      "extrapolated from the grating model", ArcQualityWarning, stacklevel=2)
     order = np.argsort(x_m)
     matched = {
         "x_px": x_m[order], "x_err_px": lines.x_err_px[d_sel][order],
@@ -849,6 +868,7 @@ def solve_1d(lines, line_list, nominal, nx_px, *, reference_row=0.0, tilt_range_
         "vote_best": best["vote"], "refined_matches": [r["n"] for r in refined],
         "fwhm_px": fwhm_px, "final_tolerance_px": float(tol),
         "unmatched_clean_detected": int(n_clean - d_sel.size),
+        "line_span_px": span, "line_coverage_fraction": coverage,
     }
     return WavelengthSolution1D(model, nominal, coeffs, domain, nx, float(reference_row),
                                 matched, rms_a, rms_px, rms_v, n_used, n_rej, errs, info)
@@ -1309,6 +1329,9 @@ def qa_metrics(solution, *, setup="", arc_name="", filter_name="", overlap=None,
         "camera_axis_nominal_px": m0.center_px, "camera_axis_fitted_px": m.center_px,
         "camera_axis_error_px": e.get("center_px", math.nan),
         "detector_offset_px": m.center_px - m0.center_px,
+        "line_first_px": s1.info.get("line_span_px", (math.nan, math.nan))[0],
+        "line_last_px": s1.info.get("line_span_px", (math.nan, math.nan))[1],
+        "line_coverage_fraction": s1.info.get("line_coverage_fraction", math.nan),
         "correction_degree": int(s1.correction_coeffs.size - 1),
         "correction_max_abs_angstrom": float(np.max(np.abs(s1.correction(np.linspace(0, nx - 1, 64))))),
         "wavelength_first_px_angstrom": float(lam_edges[0]),

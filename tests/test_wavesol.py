@@ -134,6 +134,19 @@ def test_identification_grid_has_no_wrong_identification(tilt, tilt_error, focal
     assert float(np.sqrt(np.mean(map_error_px(sol, truth) ** 2))) < 0.05
 
 
+def test_lines_on_half_the_detector_still_give_the_whole_detector():
+    # HgAr alone at 12.42 deg: the used lines lie between pixels ~400 and ~940, so the blue
+    # half is the grating model extrapolated (this case once reached 0.25 px rms when the
+    # camera-axis prior drifted with the iterations)
+    inst = sim.make_instrument(tilt_error_deg=-0.05, focal_length_error=0.023)
+    data, var, mask, header, truth = calibrated_arc(inst, 12.42, "HgAr", seed=7, lamp_scale=0.1,
+                                                    cosmic_rays=True)
+    sol = solve(data, var, mask, header)
+    assert sol.solution_1d.info["line_coverage_fraction"] < 0.6
+    assert wrong_identifications(sol, truth) == 0
+    assert float(np.sqrt(np.mean(map_error_px(sol, truth) ** 2))) < 0.05
+
+
 def test_wrong_lamps_fail_instead_of_a_wrong_solution():
     inst = sim.make_instrument()
     data, var, mask, header, _ = calibrated_arc(inst, 8.93, "HgAr,Ne", header_lamps="He")
@@ -198,6 +211,19 @@ def test_fit_recovers_exact_parameters_from_noise_free_lines():
         x, np.full(x.size, 0.01), lam, _model(tilt_deg=10.15), correction_terms=(3,),
         domain_px=domain, center_prior_px=1e4)
     assert coeffs[3] == pytest.approx(0.4, abs=1e-5)
+    assert fitted.tilt_deg == pytest.approx(10.2, abs=1e-5)
+
+
+def test_camera_axis_prior_stays_on_the_nominal_position():
+    # the prior is centred on the nominal camera axis, not on the starting model's: with an
+    # extremely tight prior the fit keeps x_c at the nominal value whatever the start
+    truth = _model(tilt_deg=10.2, focal_length_mm=253.0, center_px=511.5)
+    wave = np.linspace(4900, 7100, 25)
+    x = truth.pixel(wave)
+    start = _model(tilt_deg=10.15, focal_length_mm=251.0, center_px=530.0)
+    fitted, _, _, _ = ws.fit_grating_parameters(x, np.full(x.size, 0.01), wave, start,
+                                                center_prior_px=1e-4, center_nominal_px=511.5)
+    assert fitted.center_px == pytest.approx(511.5, abs=1e-3)
     assert fitted.tilt_deg == pytest.approx(10.2, abs=1e-5)
 
 
