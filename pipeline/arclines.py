@@ -23,6 +23,7 @@ writes the line table (ECSV) for the wavelength solution.
 import math
 import warnings
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 from scipy import ndimage, signal, special
@@ -31,7 +32,7 @@ from . import maskbits
 from .errors import ArcQualityWarning, InputFileError
 
 __all__ = [
-    "LineFlag", "ArcSpectrum", "ArcLines", "extract_band", "continuum_level",
+    "LineFlag", "ArcSpectrum", "ArcLines", "extract_band", "sum_rows", "continuum_level",
     "fit_gaussian_windows", "measure_lines", "find_arc_lines", "lines_table",
     "read_lines_table", "find_arc_lines_file",
 ]
@@ -132,12 +133,25 @@ def extract_band(data, variance, mask, *, center_row=None, half_width_rows=5):
     if int(half_width_rows) < 0:
         raise ValueError(f"`half_width_rows` must be >= 0, got {half_width_rows!r}")
     lo, hi = max(0, center - int(half_width_rows)), min(ny - 1, center + int(half_width_rows))
-    flux, var, msk = _band_sums(data[lo:hi + 1], variance[lo:hi + 1], mask[lo:hi + 1])
+    flux, var, msk = sum_rows(data[lo:hi + 1], variance[lo:hi + 1], mask[lo:hi + 1])
     return ArcSpectrum(flux, var, msk, (lo, hi))
 
 
-def _band_sums(data, variance, mask):
-    """Sums over axis -2 with masked pixels replaced by the good-row mean."""
+def sum_rows(data, variance, mask):
+    """Sum over the rows (axis -2) with masked pixels replaced by the good-row mean.
+
+    Parameters
+    ----------
+    data, variance : ndarray, shape (..., n_rows, nx)
+    mask : ndarray of uint8, shape (..., n_rows, nx)
+
+    Returns
+    -------
+    flux, variance : ndarray, shape (..., nx)
+        ``variance`` is inf where no row is good.
+    mask : ndarray of uint8, shape (..., nx)
+        SATURATED where any row is saturated; all the bits where no row is good.
+    """
     data = np.asarray(data, dtype=float)
     variance = np.asarray(variance, dtype=float)
     good = (mask == 0) & np.isfinite(data) & np.isfinite(variance)
@@ -235,6 +249,18 @@ def _integrated_gaussian(x, mu, sigma):
     return frac, d_mu, d_sigma
 
 
+def _gauss_model(x, c, par):
+    """Model ``F P(x; mu, sigma) + b0 + b1 (x - c)`` of each window and its Jacobian.
+
+    ``x`` (n, k), ``c`` (n,), ``par`` (n, 5) -> model (n, k), jacobian (n, k, 5).
+    """
+    frac, d_mu, d_sigma = _integrated_gaussian(x, par[:, 1:2], par[:, 2:3])
+    t = x - c[:, None]
+    model = par[:, 0:1] * frac + par[:, 3:4] + par[:, 4:5] * t
+    jac = np.stack([frac, par[:, 0:1] * d_mu, par[:, 0:1] * d_sigma, np.ones_like(x), t], axis=-1)
+    return model, jac
+
+
 def fit_gaussian_windows(x, y, weight, p0, *, max_iter=40, min_sigma_px=0.3):
     """Weighted least-squares fits of pixel-integrated Gaussians, many windows at once.
 
@@ -278,15 +304,7 @@ def fit_gaussian_windows(x, y, weight, p0, *, max_iter=40, min_sigma_px=0.3):
     n = p.shape[0]
     c = p[:, 1].copy()
 
-    def model_and_jac(par):
-        frac, d_mu, d_sigma = _integrated_gaussian(x, par[:, 1:2], par[:, 2:3])
-        t = x - c[:, None]
-        model = par[:, 0:1] * frac + par[:, 3:4] + par[:, 4:5] * t
-        jac = np.stack([frac, par[:, 0:1] * d_mu, par[:, 0:1] * d_sigma,
-                        np.ones_like(x), t], axis=-1)
-        return model, jac
-
-    model, jac = model_and_jac(p)
+    model, jac = _gauss_model(x, c, p)
     chi2 = np.sum(w * (y - model) ** 2, axis=1)
     lam = np.full(n, 1e-3)
     active = np.ones(n, dtype=bool)
@@ -297,11 +315,9 @@ def fit_gaussian_windows(x, y, weight, p0, *, max_iter=40, min_sigma_px=0.3):
         if not active.any():
             break
         idx = np.flatnonzero(active)
-        J = jac[idx]
-        W = w[idx]
-        r = y[idx] - model[idx]
+        J, W = jac[idx], w[idx]
         A = np.einsum("nki,nk,nkj->nij", J, W, J)
-        g = np.einsum("nki,nk,nk->ni", J, W, r)
+        g = np.einsum("nki,nk,nk->ni", J, W, y[idx] - model[idx])
         diag = np.einsum("nii->ni", A)
         damp = A + (lam[idx, None] * np.maximum(diag, 1e-12))[:, :, None] * eye
         try:
@@ -310,31 +326,25 @@ def fit_gaussian_windows(x, y, weight, p0, *, max_iter=40, min_sigma_px=0.3):
             step = np.stack([np.linalg.lstsq(m, v, rcond=None)[0] for m, v in zip(damp, g)])
         trial = p[idx] + step
         trial[:, 2] = np.maximum(trial[:, 2], min_sigma_px)
-        frac, d_mu, d_sigma = _integrated_gaussian(x[idx], trial[:, 1:2], trial[:, 2:3])
-        t = x[idx] - c[idx, None]
-        trial_model = trial[:, 0:1] * frac + trial[:, 3:4] + trial[:, 4:5] * t
+        trial_model, trial_jac = _gauss_model(x[idx], c[idx], trial)
         trial_chi2 = np.sum(W * (y[idx] - trial_model) ** 2, axis=1)
         better = trial_chi2 <= chi2[idx]
         acc = idx[better]
-        p[acc] = trial[better]
-        model[acc] = trial_model[better]
-        jac[acc] = np.stack([frac[better], trial[better, 0:1] * d_mu[better],
-                             trial[better, 0:1] * d_sigma[better],
-                             np.ones_like(frac[better]), t[better]], axis=-1)
         rel = np.abs(chi2[idx] - trial_chi2) / np.maximum(chi2[idx], 1e-30)
         small = (np.abs(step[:, 1]) < 1e-6) & (rel < 1e-8)
-        last_step[acc] = np.abs(step[better, 1])
+        p[acc], model[acc], jac[acc] = trial[better], trial_model[better], trial_jac[better]
         chi2[acc] = trial_chi2[better]
+        last_step[acc] = np.abs(step[better, 1])
         lam[acc] = np.maximum(lam[acc] / 10, 1e-9)
         lam[idx[~better]] *= 10
-        done = (better & small) | (lam[idx] > 1e8)
         converged[idx[better & small]] = True
-        active[idx[done]] = False
+        active[idx[(better & small) | (lam[idx] > 1e8)]] = False
     A = np.einsum("nki,nk,nkj->nij", jac, w, jac)
     cov = np.full((n, 5, 5), np.nan)
     ok = np.isfinite(A).all(axis=(1, 2))
     if ok.any():
-        det_ok = np.abs(np.linalg.det(A[ok])) > 0
+        with np.errstate(all="ignore"):
+            det_ok = np.abs(np.linalg.det(A[ok])) > 0
         sel = np.flatnonzero(ok)[det_ok]
         if sel.size:
             cov[sel] = np.linalg.inv(A[sel])
@@ -345,8 +355,8 @@ def fit_gaussian_windows(x, y, weight, p0, *, max_iter=40, min_sigma_px=0.3):
     return p, cov, chi2, dof, converged
 
 
-def _windows(flux, weight, centres, half_width):
-    nx = flux.size
+def _windows(nx, centres, half_width):
+    """Column indices (clipped) of windows around ``centres`` and which lie inside."""
     offsets = np.arange(-half_width, half_width + 1)
     start = np.rint(centres).astype(int)
     cols = start[:, None] + offsets[None, :]
@@ -413,7 +423,7 @@ def measure_lines(flux, variance, x_guess_px, *, sigma_guess_px, mask=None, back
     with np.errstate(divide="ignore"):
         weight_all = np.where((msk == 0) & np.isfinite(variance) & (variance > 0),
                               1.0 / variance, 0.0)
-    cols, inside = _windows(values, weight_all, x_guess, hw)
+    cols, inside = _windows(values.size, x_guess, hw)
     y = values[cols]
     if others_model is not None:
         y = y - others_model(cols)
@@ -436,12 +446,11 @@ def measure_lines(flux, variance, x_guess_px, *, sigma_guess_px, mask=None, back
     ok = (conv & np.isfinite(errs).all(axis=1) & (p[:, 0] > 0)
           & (np.abs(p[:, 1] - x_guess) <= shift_limit) & (p[:, 2] > 0.35) & (p[:, 2] < 3 * hw)
           & (dof > 0))
-    in_win = cols.astype(float)
     sat_bit = np.uint8(maskbits.MaskBit.SATURATED)
     win_mask = np.where(inside, msk[cols], 0)
     saturated = np.any(win_mask & sat_bit, axis=1)
     masked = np.any(win_mask & ~sat_bit, axis=1)
-    frac, _, _ = _integrated_gaussian(in_win, p[:, 1:2], np.maximum(p[:, 2:3], 1e-3))
+    frac, _, _ = _integrated_gaussian(x, p[:, 1:2], np.maximum(p[:, 2:3], 1e-3))
     peak = p[:, 0] * frac.max(axis=1)
     return {
         "x_px": p[:, 1], "x_err_px": errs[:, 1], "flux_e": p[:, 0], "flux_err_e": errs[:, 0],
@@ -752,7 +761,6 @@ def find_arc_lines_file(*, arc, lines, center_band_half_width_rows=5, detection_
         if key in frame.header:
             meta[key] = frame.header[key]
     table = lines_table(found, meta=meta)
-    from pathlib import Path
     Path(lines).parent.mkdir(parents=True, exist_ok=True)
     table.write(lines, format="ascii.ecsv", overwrite=True)
     return table

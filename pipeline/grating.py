@@ -53,7 +53,7 @@ __all__ = [
     "littrow_angle_deg", "grating_resolving_power", "blaze_wavelength",
     "free_spectral_range", "order_at_blaze", "GratingModel", "OrderOverlap",
     "SetupSummary", "model_from_config", "order_overlaps", "summarize_setup",
-    "format_summary", "grating_wcs_cards", "main",
+    "format_summary", "grating_wcs_cards", "filter_cut_on", "main",
 ]
 
 #: Shortest wavelength assumed to reach the detector through atmosphere and
@@ -660,7 +660,11 @@ def grating_wcs_cards(model, *, axis=1, reference_px=None):
     ]
 
 
-def _config_filter_cut_on(grating, filter_name):
+def filter_cut_on(grating, filter_name):
+    """Cut-on wavelength (Angstrom) of ``filter_name`` from ``instrument.grating.order_blocking_filters``.
+
+    Names compare case-insensitively; None when the filter is unknown or blocks nothing.
+    """
     filters = grating.get("order_blocking_filters") or {}
     if filter_name is None:
         return None
@@ -726,7 +730,7 @@ def main(argv=None):
         spatial_scale_arcsec_per_px=instrument.get("spatial_scale_arcsec_per_px"),
         illuminated_width_mm=grating.get("collimated_beam_mm"),
         blaze_wavelength_angstrom=grating.get("blaze_wavelength_angstrom"),
-        filter_name=args.filter, cut_on_angstrom=_config_filter_cut_on(grating, args.filter),
+        filter_name=args.filter, cut_on_angstrom=filter_cut_on(grating, args.filter),
         blue_limit_angstrom=args.blue_limit, warn=False)
     print(format_summary(summary))
     return 0

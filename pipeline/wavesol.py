@@ -39,7 +39,7 @@ Greisen, E. W., Calabretta, M. R., Valdes, F. G., & Allen, S. L. 2006, A&A 446, 
 
 import math
 import warnings
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from functools import partial
 from pathlib import Path
 
@@ -50,7 +50,7 @@ from scipy import optimize
 
 from . import grating as gr
 from . import maskbits
-from .arclines import ArcLines, LineFlag, _band_sums, measure_lines
+from .arclines import LineFlag, measure_lines, sum_rows
 from .errors import ArcQualityWarning, InputFileError, WavelengthSolutionError
 
 __all__ = [
@@ -156,11 +156,8 @@ class WavelengthSolution1D:
 
     def pixel(self, wave_angstrom):
         """Pixel of ``wave_angstrom`` on the reference row (Newton inversion)."""
-        wave = np.asarray(wave_angstrom, dtype=float)
-        x = self.model.pixel(wave)
-        for _ in range(6):
-            x = x - (self.wavelength(x) - wave) / self.dispersion(x)
-        return x
+        return _solution_pixels(self.model, self.correction_coeffs, self.domain_px,
+                                np.asarray(wave_angstrom, dtype=float))
 
 
 @dataclass(frozen=True)
@@ -601,7 +598,7 @@ def fit_grating_parameters(x_px, x_err_px, wave_angstrom, model, *, correction_t
 def _solution_pixels(model, coeffs, domain, wave_angstrom):
     """Pixels of ``wave`` for model + Chebyshev correction (Newton from the model)."""
     x = model.pixel(wave_angstrom)
-    for _ in range(4):
+    for _ in range(5):
         lam = model.wavelength(x) + cheb.chebval(_to_unit(x, domain), coeffs)
         x = x - (lam - wave_angstrom) / model.dispersion(x)
     return x
@@ -970,7 +967,7 @@ def trace_lines(data, variance, mask, x_ref_px, wave_angstrom, *, reference_row,
     d = data[rows].reshape(nb, br, nx)
     v = np.asarray(variance, dtype=float)[rows].reshape(nb, br, nx)
     mk = np.asarray(mask)[rows].reshape(nb, br, nx)
-    flux, var, bmask = _band_sums(d, v, mk)
+    flux, var, bmask = sum_rows(d, v, mk)
     y_band = np.arange(nb) * br + 0.5 * (br - 1)
     ref_band = int(np.clip(round((reference_row - 0.5 * (br - 1)) / br), 0, nb - 1))
     x_ref = np.asarray(x_ref_px, dtype=float)
@@ -1514,7 +1511,7 @@ def solve_wavelength_file(*, arc, lines, solution, qa, plot_lines=None, plot_res
     except WavelengthSolutionError as exc:
         raise WavelengthSolutionError(f"{arc} (setup {setup or '?'}): {exc}") from None
     filter_name = header_str(frame.header, filter_keyword, path=arc, default="NONE")
-    cut_on = gr._config_filter_cut_on(grating, filter_name)
+    cut_on = gr.filter_cut_on(grating, filter_name)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         gr.summarize_setup(sol.solution_1d.model, nx, filter_name=filter_name,

@@ -14,7 +14,6 @@ frames: the simulated flat-fielded signal (``illumination_e``) with Poisson and 
 noise in electrons, and variance = signal + read noise^2.
 """
 
-import math
 import warnings
 
 import numpy as np
