@@ -73,7 +73,7 @@ FLAT_DEFAULTS = {"clip_sigma": 3.0, "clip_iterations": 5, "block_rows": 128,
 CALIBRATION_DEFAULTS = {"use_measured_gain": True, "use_measured_read_noise": True,
                         "include_flat_error": True,
                         "cosmic_rays": {"enabled": True, "sigclip": 4.5, "sigfrac": 0.3,
-                                        "objlim": 5.0, "niter": 4}}
+                                        "objlim": 5.0, "niter": 2}}
 
 # Keywords of the raw header that describe its storage, not the observation.
 _STRUCTURAL = ("SIMPLE", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "EXTEND", "BZERO", "BSCALE",
@@ -959,6 +959,12 @@ def _spline_smooth(x, y, *, knot_spacing, sigma=3.0, maxiters=5, x_eval=None):
     return spline(np.clip(x_eval, x[0], x[-1]))
 
 
+def _subsample(values, limit=400_000):
+    """Every k-th value, at most about ``limit`` (statistics of a few 1e5 values suffice)."""
+    values = np.asarray(values).ravel()
+    return values[::max(values.size // limit, 1)]
+
+
 def _clipped_stats(values, **kwargs):
     """astropy sigma_clipped_stats without its warning about NaN (they are left out)."""
     from astropy.stats import sigma_clipped_stats
@@ -1107,12 +1113,13 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
     if not good.any():
         raise CalibrationError("no illuminated pixel in the combined flat; check "
                                "flat.min_slit_illumination and flat.min_flat_snr")
-    norm, _, _ = _clipped_stats(response[good], sigma=3.0, maxiters=5)
+    sample = _subsample(response[good])
+    norm, _, _ = _clipped_stats(sample, sigma=3.0, maxiters=5)
     response = response / norm
     if resp_var is not None:
         resp_var = resp_var / norm ** 2
-    _, med, scatter = _clipped_stats(response[good], sigma=5.0, maxiters=5,
-                                          cenfunc="median", stdfunc="mad_std")
+    _, med, scatter = _clipped_stats(sample / norm, sigma=5.0, maxiters=5,
+                                     cenfunc="median", stdfunc="mad_std")
     bad = good & ((response < min_response) | (response > max_response)
                   | (np.abs(response - 1.0) > deviant_sigma * max(scatter, _MIN_RESPONSE_SCATTER)))
     mask = np.zeros(f.shape, dtype=MASK_DTYPE)
@@ -1135,7 +1142,7 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
 # cosmic rays and the calibrated frame
 # ==================================================================================
 def find_cosmic_rays(data_e, *, read_noise_e, mask=None, sigclip=4.5, sigfrac=0.3,
-                     objlim=5.0, niter=4):
+                     objlim=5.0, niter=2):
     """Flag cosmic-ray hits by the Laplacian method (van Dokkum 2001, PASP 113, 1420).
 
     Uses astroscrappy's implementation of L.A.Cosmic.
