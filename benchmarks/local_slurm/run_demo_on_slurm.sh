@@ -1,0 +1,198 @@
+#!/usr/bin/env bash
+# Reduce a simulated demo night through Snakemake's SLURM executor and compare
+# with a local run of the same night.
+#
+#   bash benchmarks/local_slurm/start_cluster.sh          # as root, once
+#   bash benchmarks/local_slurm/run_demo_on_slurm.sh [options] [VENV]
+#   bash benchmarks/local_slurm/stop_cluster.sh
+#
+# VENV (default /work/venv) is the virtualenv with the pipeline and snakemake;
+# snakemake-executor-plugin-slurm is pip-installed into it when absent.
+# Options:
+#   --size small|full   demo night to simulate (default small; full = 4096x2048, ~80 frames)
+#   --no-local          skip the local comparison run
+#   --local-cores N     cores of the local run (default 2)
+#   --keep              keep the work folder (default: removed when all went well)
+#   -- ARGS...          extra arguments for the SLURM snakemake call
+# Environment: WORK_DIR parent of the work folder (default ${TMPDIR:-/tmp}; on a
+# real cluster it must be on a file system the compute nodes share);
+# PIPELINE_REPO the checkout to run (default: the one holding this script).
+#
+# Prints the wall time and the number of SLURM jobs of the cluster run, the wall
+# time of the local run and their ratio; exits non-zero when a run failed or the
+# manifest lists missing products.
+set -euo pipefail
+
+REPO=${PIPELINE_REPO:-$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)}
+VENV=/work/venv
+SIZE=small
+LOCAL=1
+LOCAL_CORES=2
+KEEP=0
+EXTRA=()
+while [ $# -gt 0 ]; do
+    case "$1" in
+        --size) SIZE=$2; shift 2 ;;
+        --no-local) LOCAL=0; shift ;;
+        --local-cores) LOCAL_CORES=$2; shift 2 ;;
+        --keep) KEEP=1; shift ;;
+        --) shift; EXTRA=("$@"); break ;;
+        -h|--help) sed -n '2,24p' "${BASH_SOURCE[0]}"; exit 0 ;;
+        -*) echo "unknown option $1 (see --help)" >&2; exit 2 ;;
+        *) VENV=$1; shift ;;
+    esac
+done
+PY=$VENV/bin/python
+SMK=$VENV/bin/snakemake
+say() { echo "[run_demo_on_slurm] $*"; }
+die() { echo "[run_demo_on_slurm] ERROR: $*" >&2; exit 1; }
+
+[ -x "$PY" ] || die "no python in venv $VENV"
+[ -x "$SMK" ] || die "no snakemake in venv $VENV"
+command -v sbatch >/dev/null && sinfo -h -o '%t' 2>/dev/null | grep -Eq '^(idle|mix|alloc)' \
+    || die "no SLURM node is up: run benchmarks/local_slurm/start_cluster.sh first (as root)"
+
+if ! "$PY" -c 'import snakemake_executor_plugin_slurm' 2>/dev/null; then
+    say "installing snakemake-executor-plugin-slurm into $VENV"
+    "$PY" -m pip install -q snakemake-executor-plugin-slurm
+fi
+say "snakemake $("$SMK" --version), slurm plugin $("$PY" -c 'import importlib.metadata as m; print(m.version("snakemake-executor-plugin-slurm"))'), $(sinfo -V)"
+
+WORK=$(mktemp -d "${WORK_DIR:-${TMPDIR:-/tmp}}/slurm_demo.XXXXXX")
+RAW=$WORK/raw
+say "work folder $WORK"
+cd "$REPO"
+"$PY" -m demo_data.simulate --out "$RAW" --size "$SIZE" --quiet
+say "simulated the $SIZE demo night: $(ls "$RAW"/*.fits | wc -l) raw files"
+
+now() { date +%s.%N; }
+status=0
+
+# --- the cluster run -------------------------------------------------------
+# --slurm-no-account and --slurm-status-command squeue: this test cluster has no
+# accounting database (no sacctmgr accounts, sacct never sees jobs finish).
+SLURM_LOG=$WORK/slurm_run.log
+say "SLURM run: snakemake --profile profiles/slurm --slurm-no-account --slurm-status-command squeue ${EXTRA[*]}"
+t0=$(now)
+set +e
+"$SMK" --profile profiles/slurm --slurm-no-account --slurm-status-command squeue \
+    "${EXTRA[@]}" --config raw_dir="$RAW" out_dir="$WORK/out_slurm" >"$SLURM_LOG" 2>&1
+rc_slurm=$?
+set -e
+t1=$(now)
+T_SLURM=$(awk -v a="$t0" -v b="$t1" 'BEGIN {printf "%.2f", b - a}')
+[ "$rc_slurm" -eq 0 ] || { say "SLURM run exited $rc_slurm (log: $SLURM_LOG)"; tail -n 30 "$SLURM_LOG"; status=1; }
+
+# --- the local run ---------------------------------------------------------
+T_LOCAL=""
+if [ "$LOCAL" -eq 1 ]; then
+    LOCAL_LOG=$WORK/local_run.log
+    say "local run: snakemake --cores $LOCAL_CORES"
+    t0=$(now)
+    set +e
+    # RUSAGE_CHILDREN of the wrapper = peak RSS of the largest single job process.
+    "$PY" -c 'import resource, subprocess, sys
+rc = subprocess.call(sys.argv[2:], stdout=open(sys.argv[1], "w"), stderr=subprocess.STDOUT)
+open(sys.argv[1] + ".maxrss", "w").write(str(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss))
+sys.exit(rc)' "$LOCAL_LOG" "$SMK" --cores "$LOCAL_CORES" --config raw_dir="$RAW" out_dir="$WORK/out_local"
+    rc_local=$?
+    set -e
+    t1=$(now)
+    T_LOCAL=$(awk -v a="$t0" -v b="$t1" 'BEGIN {printf "%.2f", b - a}')
+    [ "$rc_local" -eq 0 ] || { say "local run exited $rc_local (log: $LOCAL_LOG)"; tail -n 30 "$LOCAL_LOG"; status=1; }
+fi
+
+# --- checks and figures ----------------------------------------------------
+set +e
+"$PY" - "$WORK" "$T_SLURM" "${T_LOCAL:-}" "$LOCAL_CORES" <<'EOF'
+import re, sys
+from collections import Counter
+from pathlib import Path
+from astropy.table import Table
+
+work, t_slurm = Path(sys.argv[1]), float(sys.argv[2])
+t_local = float(sys.argv[3]) if sys.argv[3] else None
+cores = sys.argv[4]
+bad = False
+
+def manifest(name):
+    path = work / name / "manifest.ecsv"
+    if not path.exists():
+        print(f"  {name}: no manifest.ecsv")
+        return None
+    tab = Table.read(path, format="ascii.ecsv")
+    counts = Counter(str(s) for s in tab["status"])
+    print(f"  {name}/manifest.ecsv: {len(tab)} rows, status " +
+          ", ".join(f"{k} {v}" for k, v in sorted(counts.items())))
+    return tab
+
+# Jobs submitted to SLURM, by rule, from the Snakemake log (rule block -> jobid -> SLURM id).
+log = (work / "slurm_run.log").read_text()
+rule_of, current = {}, None
+for line in log.splitlines():
+    m = re.match(r"\s*(local)?rule (\w+):", line)
+    if m:
+        current = (m.group(2), bool(m.group(1)))
+    m = re.match(r"\s*jobid: (\d+)", line)
+    if m and current:
+        rule_of[m.group(1)] = current
+submitted = re.findall(r"Job (\d+) has been submitted with SLURM jobid (\d+)", log)
+per_rule = Counter(rule_of.get(j, ("?", False))[0] for j, _ in submitted)
+local_rules = sorted({r for r, is_local in rule_of.values() if is_local})
+slurm_ids = {s for _, s in submitted}
+
+# What SLURM itself recorded (jobcomp/filetxt of start_cluster.sh): state and run time.
+states, elapsed = Counter(), 0.0
+comp = Path("/var/log/slurm/jobcomp.log")
+if comp.exists():
+    from datetime import datetime
+    for line in comp.read_text().splitlines():
+        f = dict(kv.split("=", 1) for kv in line.split() if "=" in kv)
+        if f.get("JobId") in slurm_ids:
+            states[f["JobState"]] += 1
+            elapsed += (datetime.fromisoformat(f["EndTime"]) -
+                        datetime.fromisoformat(f["StartTime"])).total_seconds()
+
+print("\n=== SLURM demo-night benchmark ===")
+slurm_tab = manifest("out_slurm")
+local_tab = manifest("out_local") if t_local is not None else None
+for name, tab in (("out_slurm", slurm_tab), ("out_local", local_tab)):
+    if tab is None and (name == "out_slurm" or t_local is not None):
+        bad = True
+    elif tab is not None and (tab["status"] == "missing").any():
+        print(f"  {name}: MISSING products:")
+        for row in tab[tab["status"] == "missing"]:
+            print(f"    {row['path']}  {row['note']}")
+        bad = True
+if slurm_tab is not None and local_tab is not None:
+    a, b = set(slurm_tab["path"]), set(local_tab["path"])
+    print(f"  same product list in both runs: {a == b}" +
+          ("" if a == b else f" (only SLURM: {sorted(a - b)[:5]}, only local: {sorted(b - a)[:5]})"))
+print(f"SLURM run wall time:  {t_slurm:8.1f} s")
+print(f"SLURM jobs submitted: {len(submitted):8d}  (" +
+      ", ".join(f"{r} {n}" for r, n in sorted(per_rule.items())) + ")")
+if local_rules:
+    print(f"run in the main process (localrules): {', '.join(local_rules)}")
+if states:
+    print(f"SLURM job records:    {sum(states.values()):8d}  (" +
+          ", ".join(f"{k} {v}" for k, v in sorted(states.items())) +
+          f"); summed job run time {elapsed:.0f} s")
+    if set(states) - {"COMPLETED"}:
+        bad = True
+if t_local is not None:
+    maxrss = Path(work / "local_run.log.maxrss")
+    rss = f", largest job peak RSS {int(maxrss.read_text()) / 1024:.0f} MB" if maxrss.exists() else ""
+    print(f"local run (--cores {cores}) wall time: {t_local:8.1f} s{rss}")
+    print(f"ratio SLURM / local wall time: {t_slurm / t_local:8.2f}")
+sys.exit(1 if bad else 0)
+EOF
+rc_check=$?
+set -e
+[ "$rc_check" -eq 0 ] || status=1
+
+if [ "$status" -eq 0 ] && [ "$KEEP" -eq 0 ]; then
+    rm -rf "$WORK"
+else
+    say "work folder kept: $WORK (logs: slurm_run.log, local_run.log; job logs in .snakemake/slurm_logs)"
+fi
+exit "$status"
