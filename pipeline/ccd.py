@@ -1027,9 +1027,21 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
     2. Lamp spectrum: each column's clipped mean of ``flat / p(y)`` over the
        illuminated rows, smoothed along x by a cubic spline with clipping.
     3. Slit illumination: ``flat / lamp`` medianed in column bins, each bin's
-       profile smoothed along y by a spline, interpolated linearly in x.
+       profile smoothed along y by a spline (deviant rows, e.g. dead columns,
+       rejected), interpolated linearly in x. Lit rows at the slit ends whose
+       profile misses the spline by more than 0.5 % (at most 5 per end) are
+       treated as unilluminated: the spline cannot follow the steep edge.
     4. Response = ``flat / (lamp * illumination)`` (or ``flat / lamp``),
-       divided by its clipped mean over good illuminated pixels.
+       divided by its clipped mean over good illuminated pixels. Large-scale
+       response structure ends up in the smooth models, not in the response.
+
+    Examples
+    --------
+    >>> yy, xx = np.mgrid[0:40, 0:300]
+    >>> flat = (500.0 + xx) * np.where((yy > 3) & (yy < 36), 1.0, 0.0)
+    >>> r = normalise_flat(flat, min_flat_snr=0)
+    >>> bool(np.allclose(r.response[r.mask == 0], 1.0, atol=1e-3))
+    True
     """
     from scipy.interpolate import interp1d
 

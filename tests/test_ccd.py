@@ -552,3 +552,20 @@ def test_adapters_other_layout(tmp_path, rng):
     assert (mf.mask[44:] & MaskBit.UNILLUMINATED).all()
     assert h["GAIN"] == gain and h["GAINSRC"] == "configured"
     assert mf.header["GAINMEAS"] == pytest.approx(gain, rel=0.05)
+
+
+def test_module_defaults_match_the_schema():
+    """The step's keyword defaults are the schema's (one source of truth for users)."""
+    schema = yaml.safe_load((REPO / "config" / "schema.yaml").read_text())["properties"]
+
+    def defaults(node):
+        out = {}
+        for key, sub in node["properties"].items():
+            out[key] = defaults(sub) if sub.get("type") == "object" and "properties" in sub \
+                else sub["default"]
+        return out
+
+    for section, module_defaults in (("overscan", ccd.OVERSCAN_DEFAULTS),
+                                     ("bias", ccd.BIAS_DEFAULTS), ("flat", ccd.FLAT_DEFAULTS),
+                                     ("calibration", ccd.CALIBRATION_DEFAULTS)):
+        assert defaults(schema[section]) == module_defaults, section
