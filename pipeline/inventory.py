@@ -226,6 +226,15 @@ class NightInventory:
 
         return min(arcs, key=distance)
 
+    def problems(self):
+        """One line per ignored or rejected file: ``'<path>: <status>: <reason>'``.
+
+        The same text as the :class:`~pipeline.errors.InputFileWarning` of each;
+        for printing where Python warnings are not shown (Snakemake hides the
+        warnings raised while it parses the Snakefile).
+        """
+        return [f"{r.path}: {r.status}: {r.reason}" for r in self.records if r.status != "ok"]
+
     def to_table(self):
         """The night log as an astropy Table (one row per file)."""
         from astropy.table import Table
@@ -516,11 +525,10 @@ def take_inventory(raw_dir, instrument):
     records = [_read_record(p, fid, instrument) for p, fid in zip(paths, _unique_ids(paths))]
     records = _check_associations(_check_shapes(records))
     records.sort(key=lambda r: r.frame_id)
-    for rec in records:
-        if rec.status != "ok":
-            warnings.warn(f"{rec.path}: {rec.status}: {rec.reason}", InputFileWarning,
-                          stacklevel=2)
-    return NightInventory(tuple(records))
+    inventory = NightInventory(tuple(records))
+    for line in inventory.problems():
+        warnings.warn(line, InputFileWarning, stacklevel=2)
+    return inventory
 
 
 def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument):

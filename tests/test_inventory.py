@@ -92,6 +92,7 @@ def test_good_night_classification(tmp_path, instrument):
                      "focus": ("ignored", "ignored")}
     # one warning, for the ignored frame, naming the file
     assert len(warns) == 1 and "focus.fits" in str(warns[0].message)
+    assert inv.problems() == [str(warns[0].message)]
     assert inv.setups() == ["G600_t08.93_s1.2_2x2_NONE"]
     assert inv.readouts() == ["2x2"]
     sci = inv.record("sci1")
