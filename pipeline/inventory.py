@@ -18,8 +18,9 @@ Rules applied, in order:
 3. Shape: within a readout mode (biases) or a setup (all others), every
    frame must have the most common shape, and the data and overscan sections
    must lie inside it.
-4. Associations: flats and arcs need biases of their readout mode; standard
-   and science frames need biases, flats and arcs of their setup.
+4. Associations: every non-bias frame needs usable biases of its readout mode,
+   of its shape; standard and science frames also need flats and arcs of their
+   setup.
 
 Setup ids join the setup-keyword values with ``_`` (e.g.
 ``G600_t08.93_s1.2_2x2_NONE``): the grating tilt is written ``t`` + two
@@ -476,11 +477,17 @@ def _check_shapes(records):
 
 def _check_associations(records):
     """Reject frames whose calibrations are missing."""
-    bias_readouts = {r.readout for r in records if r.ok and r.frame_type == "bias"}
+    bias_shapes = {r.readout: r.shape for r in records if r.ok and r.frame_type == "bias"}
     out = []
     for rec in records:
-        if rec.ok and rec.frame_type != "bias" and rec.readout not in bias_readouts:
-            rec = _reject(rec, f"no usable bias for readout mode {rec.readout}")
+        if rec.ok and rec.frame_type != "bias":
+            if rec.readout not in bias_shapes:
+                rec = _reject(rec, f"no usable bias for readout mode {rec.readout}")
+            elif rec.shape != bias_shapes[rec.readout]:
+                want = bias_shapes[rec.readout]
+                rec = _reject(rec, f"shape {rec.shape[1]} x {rec.shape[0]} (NAXIS1 x NAXIS2) "
+                              f"differs from the {want[1]} x {want[0]} of the biases of "
+                              f"readout mode {rec.readout}")
         out.append(rec)
     flat_setups = {r.setup for r in out if r.ok and r.frame_type == "flat"}
     arc_setups = {r.setup for r in out if r.ok and r.frame_type == "arc"}

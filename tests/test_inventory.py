@@ -190,8 +190,12 @@ def test_missing_calibrations_reject_science(tmp_path, instrument):
     write_raw(folder / "a1.fits", "ARC")
     write_raw(folder / "sci_1x1.fits", "OBJECT", obj="Q",
               setup={**SETUP_A, "CCDSUM": "1 1"})
+    write_raw(folder / "f_wide.fits", "FLAT", shape=(40, 44), setup={**SETUP_A, "FILTER": "W"})
     inv, _ = inventory_quiet(folder, instrument)
     assert inv.record("sci_1x1").reason == "no usable bias for readout mode 1x1"
+    # alone in its setup, but not the shape of the biases of its readout mode
+    assert inv.record("f_wide").reason == ("shape 44 x 40 (NAXIS1 x NAXIS2) differs from the "
+                                           "36 x 40 of the biases of readout mode 2x2")
     assert inv.record("sci1").status == "ok"
     with pytest.raises(KeyError, match="no usable bias"):
         inv.bias_for("sci_1x1")
