@@ -68,8 +68,7 @@ def arc_lines_figure(solution, flux, lines, *, title=""):
         ax.annotate(f"{wave:.2f} {sp}", (xm, max(flux[k], floor)), xytext=(0, 4),
                     textcoords="offset points", rotation=90, fontsize=6, color=color,
                     ha="center", va="bottom")
-    noise = 1.4826 * np.nanmedian(np.abs(flux - np.nanmedian(flux)))
-    ax.set_ylim(bottom=-3 * max(noise, 1.0), top=top * 8)
+    ax.set_ylim(bottom=1.5 * min(float(np.nanpercentile(flux, 1)), -1.0), top=top * 8)
     ax.set_xlim(0, flux.size - 1)
     ax.set_xlabel("pixel along the dispersion")
     ax.set_ylabel("electrons (band sum)")
