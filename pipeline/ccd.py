@@ -1660,8 +1660,9 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
         (e-/ADU, photon transfer; -1 when not measurable), ``GAINOK``,
         ``FLATNORM``.
     qa : str
-        ECSV: one row per flat (level, saturated pixels) and per-pair gains;
-        measured and configured gain in the meta.
+        ECSV: a row per flat (``kind='frame'``: level, saturated pixels) and
+        per gain pair (``kind='pair'``: mean tile signal, gain, tiles); the
+        measured and configured gain and the mask counts in the meta.
     instrument : dict
         CCD part of the instrument config.
     overscan, flat : dict
@@ -1772,8 +1773,11 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
     header["NDEFECT"] = (int(defects.sum()), "pixels of flat.bad_pixel_sections")
     write_frame(Frame(response, variance, mask.astype(MASK_DTYPE), header, unit=""),
                 master, extra_hdus=[lamp_hdu])
-    rows = [(Path(p).name, lev, ns, "", math.nan, 0) for p, lev, ns in zip(paths, levels, n_sat)]
-    rows += [(a, lev, 0, b, g, nt) for a, b, g, nt, lev in pair_rows]
+    # one row per flat (kind 'frame': its level) and per gain pair (kind 'pair': the
+    # mean signal of the tiles used, the pair's gain and number of tiles)
+    rows = [("frame", Path(p).name, lev, ns, "", math.nan, 0)
+            for p, lev, ns in zip(paths, levels, n_sat)]
+    rows += [("pair", a, lev, 0, b, g, nt) for a, b, g, nt, lev in pair_rows]
     meta = {"gain_measured_e_per_adu": _finite_or(gain_meas),
             "gain_configured_e_per_adu": gain_conf, "gain_within_tolerance": gain_ok,
             "gain_tolerance": gtol, "read_noise_adu": rn_adu,
@@ -1783,8 +1787,8 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
             "n_unilluminated": resp.info["n_unilluminated"], "norm": resp.info["norm"],
             "response_scatter": resp.info["response_scatter"],
             "illuminated_rows": resp.info["illuminated_rows"], "n_clipped": comb.info["n_clipped"]}
-    _write_qa(rows, ["frame", "level_adu", "n_saturated", "pair_with", "pair_gain_e_per_adu",
-                     "pair_tiles"], meta, qa)
+    _write_qa(rows, ["kind", "frame", "level_adu", "n_saturated", "pair_with",
+                     "pair_gain_e_per_adu", "pair_tiles"], meta, qa)
     log.info("master flat %s: %d frames, gain %.4f e-/ADU (configured %s), %d bad (%d of them "
              "known defects), %d unilluminated pixels", master, len(paths), gain_meas, gain_conf,
              int(((mask & _BAD) != 0).sum()), int(defects.sum()), resp.info["n_unilluminated"])
