@@ -1484,11 +1484,18 @@ def _signal_to_noise(spec):
     return float(np.median(spec.values[good] / np.sqrt(spec.variance[good])))
 
 
+#: FWHM^2 added by integrating a Gaussian over 1-px bins: (2 sqrt(2 ln 2))^2 / 12 px^2
+_PIXEL_FWHM2 = 8.0 * math.log(2.0) / 12.0
+
+
 def _profile_fwhm_arcsec(spec, spatial_scale_arcsec_per_px):
-    """(FWHM in arcsec, reference wavelength) of an extracted profile from its header
-    (APFWHMPX rows x BINSPAT x unbinned scale, at APREFWL); raises InputFileError."""
+    """(FWHM in arcsec, reference wavelength) of the image of an extracted profile from its
+    header: APFWHMPX rows with the pixel's own width removed in quadrature (a Gaussian
+    integrated over 1-px bins has sigma^2 + 1/12 px^2), x BINSPAT x the unbinned scale, at
+    APREFWL. Raises InputFileError when a keyword is missing."""
     header, path = spec.header, spec.path
     fwhm_px = _header_float(header, "APFWHMPX", path)
+    fwhm_px = math.sqrt(max(fwhm_px ** 2 - _PIXEL_FWHM2, 0.25 * fwhm_px ** 2))
     binning = _header_float(header, "BINSPAT", path, required=False)
     binning = binning if math.isfinite(binning) and binning > 0 else 1.0
     ref = _header_float(header, "APREFWL", path, required=False)
@@ -1517,7 +1524,9 @@ def _qa_table(rows, meta):
              "status", "reason")
     dtypes = (str, str, str, str, float, str, float, float, float, int, int, int, float, float,
               float, float, str, str)
-    table = Table(rows=[[r.get(n, "" if t is str else (0 if t is int else math.nan))
+    # empty strings would come back from ECSV as masked values: write "none" instead
+    table = Table(rows=[[(r.get(n) or "none") if t is str else
+                         r.get(n, 0 if t is int else math.nan)
                          for n, t in zip(names, dtypes)] for r in rows] or None,
                   names=names, dtype=dtypes)
     for col in ("wave_min_angstrom", "wave_max_angstrom"):
@@ -1709,7 +1718,8 @@ def _write_listing(path, rows, meta):
     from astropy.table import Table
 
     names = ("object", "aperture", "input_file", "file", "status", "reason")
-    table = Table(rows=[[str(r.get(n, "")) for n in names] for r in rows] or None,
+    # empty strings would come back from ECSV as masked values: write "none" instead
+    table = Table(rows=[[str(r.get(n) or "none") for n in names] for r in rows] or None,
                   names=names, dtype=[str] * len(names))
     if any("table_ratio_median" in r for r in rows):
         for col in ("table_ratio_median", "table_ratio_rms_percent"):
