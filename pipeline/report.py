@@ -45,6 +45,10 @@ _MAX_ROWS = 60
 
 
 def _fmt(value):
+    if value is np.ma.masked:
+        return ""
+    if isinstance(value, np.ndarray) and value.ndim == 0:
+        value = value.item()
     if isinstance(value, (float, np.floating)):
         if not np.isfinite(value):
             return str(value)
