@@ -1259,7 +1259,7 @@ _WCS_KEYS = re.compile(r"^(CTYPE|CUNIT|CRPIX|CRVAL|CDELT|CD\d_|PC\d_|PV\d_|PS\d_
                        r"SPECSYS|SSYSOBS|RESTWAV|RESTFRQ|CNAME|CSYER|CRDER|WCSNAME)")
 
 
-def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None):
+def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None, calibrations=()):
     """Write a calibrated spectrum so that ``specutils.Spectrum.read(path)`` opens it.
 
     Parameters
@@ -1270,6 +1270,8 @@ def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None):
     calibrated : CalibratedSpectrum
     header_extra : mapping, optional
         Keywords added to the primary header (values or (value, comment)).
+    calibrations : sequence of str
+        Files used to calibrate (sensitivity, extinction table): ``CALIBnn``.
 
     Notes
     -----
@@ -1300,7 +1302,7 @@ def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None):
         header.update(cards)
     header["BUNIT"] = (FLUX_UNIT, "flux density above the atmosphere")
     _set_cards(header, header_extra)
-    provenance.stamp(header, inputs=[spectrum.path])
+    provenance.stamp(header, inputs=[spectrum.path], calibrations=list(calibrations))
     primary = fits.PrimaryHDU(np.asarray(calibrated.flux, dtype=np.float64), header=header)
     primary.name = "FLUX"
     var = fits.ImageHDU(np.asarray(calibrated.variance, dtype=np.float64), name="VAR")
@@ -1323,7 +1325,7 @@ def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None):
 # ----------------------------------------------------------------------------
 
 def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="ok", reason="",
-                      header_extra=None, inputs=()):
+                      header_extra=None, inputs=(), calibrations=()):
     """Write a sensitivity product (layout in the module docstring).
 
     Parameters
@@ -1404,7 +1406,7 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
             from astropy.table import vstack
             hdus.append(fits.table_to_hdu(vstack(rows)))
             hdus[-1].name = "POINTS"
-    provenance.stamp(h, inputs=list(inputs))
+    provenance.stamp(h, inputs=list(inputs), calibrations=list(calibrations))
     path.parent.mkdir(parents=True, exist_ok=True)
     fits.HDUList(hdus).writeto(path, overwrite=True, checksum=True)
     return path
@@ -1591,6 +1593,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                          f"{len(dirs)} directories, {len(tables)} tables")
     regions = _regions(exclude_regions)
     points, rows, used_names, inputs, problems, fwhms = [], [], [], [], [], []
+    calibrations = list(dict.fromkeys(tables)) + _as_path_list(extinction_table)
     try:
         extinction = _load_extinction(extinction_table)
     except InputFileError as exc:
@@ -1676,7 +1679,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         warnings.warn(f"setup {setup}: no sensitivity ({reason}); its science spectra stay "
                       "uncalibrated", FluxCalibrationWarning, stacklevel=2)
         write_sensitivity(sensitivity, None, setup=setup, status="failed", reason=reason,
-                          inputs=inputs)
+                          inputs=inputs, calibrations=calibrations)
         meta.update(status="failed", reason=reason)
         _qa_table(rows, meta).write(qa_table, format="ascii.ecsv", overwrite=True)
         qa_flux.plot_message(qa_plot, f"no sensitivity for setup {setup}:\n{reason}",
@@ -1696,7 +1699,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                 chi2_reduced=fit.info["chi2_reduced"], wave_min_angstrom=fit.wave_min,
                 wave_max_angstrom=fit.wave_max, standards=used_names)
     write_sensitivity(sensitivity, fit, points, setup=setup, standards=used_names,
-                      inputs=inputs,
+                      inputs=inputs, calibrations=calibrations,
                       header_extra={"EXTTAB": ((extinction.source if extinction else "none"),
                                                "extinction table"),
                                     "SLITCORR": (bool(slit_loss_correction),
@@ -1851,7 +1854,9 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                 }
                 for i, key in enumerate(k for k in sens_header if k.startswith("STD")):
                     extra[f"FCSTD{i + 1:02d}"] = (sens_header[key], "standard of the sensitivity")
-                write_fluxed_spectrum(target, spec, cal, header_extra=extra)
+                write_fluxed_spectrum(target, spec, cal, header_extra=extra,
+                                      calibrations=sens_paths[:1] + _as_path_list(
+                                          extinction_table))
                 row.update(file=str(target), status="calibrated", reason="")
                 notes = []
                 if cal.info["n_extrapolated"]:

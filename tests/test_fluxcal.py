@@ -790,3 +790,21 @@ def test_calibrated_standard_is_compared_with_its_table(night_files):
     assert rows[0]["table_ratio_rms_percent"] < 0.6
     listing = Table.read(out / "std" / fc.LISTING_NAME)
     assert "table_ratio_rms_percent" in listing.colnames
+
+
+def test_products_record_their_inputs_and_calibrations(night_files):
+    f = night_files
+    out = f["tmp"] / "out"
+    fc.fit_sensitivity_file(spectra=[str(f["std"])], flux_tables=[str(f["table"])],
+                            sensitivity=str(out / "s.fits"), qa_table=str(out / "q.ecsv"),
+                            qa_plot=str(out / "q.png"), extinction_table=str(f["extinction"]),
+                            setup="A", exclude_regions=REGIONS)
+    h = fits.getheader(out / "s.fits")
+    assert h["INPUT01"] == "TST-1_ap1.fits"
+    assert {h["CALIB01"], h["CALIB02"]} == {"TST-1.ecsv", "extinction_curve.csv"}
+    fc.flux_calibrate_file(spectra=str(f["sci"]), fluxed=str(out / "sci"),
+                           sensitivity=str(out / "s.fits"), extinction_table=str(f["extinction"]),
+                           setup="A")
+    h = fits.getheader(out / "sci" / "GAL-1_ap1.fits")
+    assert h["INPUT01"] == "GAL-1_ap1.fits" and h["CALIB01"] == "s.fits"
+    assert h["PIPESTEP"] and "CHECKSUM" in h
