@@ -52,8 +52,7 @@ def plot_rectified_frame(reduction, path, *, title="", arcsec_per_px=None):
     ax = fig.add_axes([0.06, 0.12, 0.72, 0.78])
     axp = fig.add_axes([0.80, 0.12, 0.17, 0.78], sharey=ax)
     extent = (wave[0], wave[-1], -0.5, ny - 0.5)
-    cmap = plt.get_cmap("gray").copy()
-    cmap.set_bad("darkred")
+    cmap = plt.get_cmap("gray").with_extremes(bad="darkred")
     ax.imshow(data, origin="lower", aspect="auto", extent=extent, cmap=cmap,
               vmin=lo, vmax=hi if hi > lo else lo + 1, interpolation="nearest")
     sky_rows = reduction.sky_region.mean(axis=1) > 0.5

@@ -21,7 +21,7 @@ why the sky is fitted here and not after rectification.
 Choices
 -------
 * Breakpoints are spaced ``knot_spacing_px`` times the median dispersion
-  (default 0.8 px); intervals with fewer than ``min_points_per_interval``
+  (default 0.6 px); intervals with fewer than ``min_points_per_interval``
   samples are merged, so frames with untilted lines still have a well-posed
   fit.
 * Weights use a *model* variance ``a + b * max(S, 0)``: the coefficients of
@@ -280,7 +280,7 @@ def _illumination(rows_u, d_u, base_u, var_u, keep, ny, *, bridge_rows=20, min_r
     return illum / (np.sum(den[has] * illum[has]) / np.sum(den[has]))
 
 
-def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.8,
+def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
             spatial_order=0, fit_illumination=True, reject_sigma=5.0, max_iterations=8,
             min_points_per_interval=None):
     """Fit a B-spline sky to the sky pixels of a frame in native coordinates.

@@ -116,8 +116,8 @@ def sanitise_name(text, *, fallback="unnamed"):
 
     Letters, digits and ``. + _ -`` are kept; every other run of characters
     (path separators, spaces, control characters...) becomes one ``_``;
-    leading dots and outer underscores are stripped, so the result can never
-    be a hidden file or a path.
+    leading ``. _ -`` and trailing ``_`` are stripped, so the result can never
+    be a path, a hidden file or an option-like name; at most 64 characters.
 
     Examples
     --------
@@ -126,8 +126,8 @@ def sanitise_name(text, *, fallback="unnamed"):
     >>> sanitise_name("../..")
     'unnamed'
     """
-    cleaned = _UNSAFE.sub("_", str(text)).strip("_").lstrip(".").strip("_")
-    cleaned = cleaned[:64]
+    cleaned = _UNSAFE.sub("_", str(text)).lstrip("._-").rstrip("_")
+    cleaned = cleaned[:64].rstrip("_")
     if not cleaned or set(cleaned) <= {".", "_", "-"}:
         return fallback
     return cleaned

@@ -5,7 +5,10 @@ Detection
 The frame is collapsed along the dispersion (median of the good pixels of
 each row, so sky-line residuals and cosmic rays do not matter), smoothed with
 a Gaussian of the expected seeing (a matched filter) and searched for peaks
-(:func:`scipy.signal.find_peaks`). The noise of the smoothed profile is
+(:func:`scipy.signal.find_peaks`) whose height *and* prominence (height above
+the saddle towards any brighter neighbour) exceed ``snr_min`` times the noise,
+so a shoulder on the wing of an extended object is not a second object. The
+noise of the smoothed profile is
 measured from the profile itself (1.4826 x median absolute deviation, with
 the objects excluded), so the detection S/N is honest whatever the
 correlations of the pixels. Every peak above ``snr_min`` is an object; its
@@ -202,7 +205,8 @@ def find_objects(profile, *, fwhm_guess_px=3.0, snr_min=5.0, max_objects=10,
     fwhm_guess_px : float
         Expected seeing FWHM, rows (width of the matched filter).
     snr_min : float
-        Detection threshold on the smoothed profile, in units of its noise.
+        Detection threshold on the smoothed profile (height above the
+        background and prominence), in units of its noise.
     max_objects : int
         Keep at most this many (highest S/N first).
     min_separation_fwhm : float
@@ -239,6 +243,7 @@ def find_objects(profile, *, fwhm_guess_px=3.0, snr_min=5.0, max_objects=10,
         if not noise > 0:
             noise = float(np.std(smooth[~excluded])) or 1.0
         peaks, _ = find_peaks(smooth - level, height=snr_min * noise,
+                              prominence=snr_min * noise,
                               distance=max(1, int(min_separation_fwhm * fwhm_guess_px)))
         new = np.zeros(prof.size, bool)
         for p in peaks:
@@ -624,7 +629,7 @@ def traces_to_table(traces, *, frame_id="", object_name=""):
     table["object"] = [object_name] * len(traces)
     table["aperture"] = np.arange(1, len(traces) + 1)
     table["mode"] = [t.mode for t in traces]
-    table["reference"] = [t.reference for t in traces]
+    table["reference"] = [t.reference or "none" for t in traces]  # no empty (masked) cells
     table["centre_px"] = [t.centre_px for t in traces]
     table["reference_wave_angstrom"] = [t.reference_wave_angstrom for t in traces]
     table["fwhm_px"] = [t.fwhm_px for t in traces]
@@ -632,9 +637,12 @@ def traces_to_table(traces, *, frame_id="", object_name=""):
     table["rms_px"] = [float(t.info.get("rms_px", np.nan)) for t in traces]
     table["domain_lo_angstrom"] = [t.domain_angstrom[0] for t in traces]
     table["domain_hi_angstrom"] = [t.domain_angstrom[1] for t in traces]
-    table["coefficients"] = coefs
+    table["order"] = [len(t.coefficients) - 1 for t in traces]
+    for k in range(max_n):
+        table[f"coef_{k}"] = coefs[:, k]
     table.meta["description"] = ("Trace centres (rows of the rectified frame) as Chebyshev "
-                                 "series in wavelength mapped from the domain to [-1, 1]")
+                                 "series coef_0..coef_order in wavelength mapped from the "
+                                 "domain to [-1, 1]")
     return table
 
 
@@ -642,8 +650,10 @@ def traces_from_table(table):
     """Inverse of :func:`traces_to_table`."""
     out = []
     for row in table:
-        out.append(Trace(np.array(row["coefficients"], float),
+        coef = np.array([row[f"coef_{k}"] for k in range(int(row["order"]) + 1)], float)
+        out.append(Trace(coef,
                          (float(row["domain_lo_angstrom"]), float(row["domain_hi_angstrom"])),
                          float(row["fwhm_px"]), float(row["snr"]), str(row["mode"]),
-                         str(row["reference"]), {"rms_px": float(row["rms_px"])}))
+                         "" if str(row["reference"]) in ("none", "--") else str(row["reference"]),
+                         {"rms_px": float(row["rms_px"])}))
     return out

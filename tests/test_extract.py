@@ -1,0 +1,209 @@
+"""Boxcar and optimal extraction (pipeline/extract.py).
+
+Truth used here:
+* analytic frames: pixel-integrated Gaussian profiles (scipy.special.ndtr) with
+  Poisson and read noise of known variance; the Cramer-Rao bound of a flux
+  with a known profile, 1 / sum(P^2 / V) (Horne 1986, PASP 98, 609, eq. 9);
+* demo-simulator truth (independent code): the object's electrons per detector
+  column along its trace, its noise-free image and the pixel variances.
+"""
+
+import warnings
+
+import numpy as np
+import pytest
+from scipy.special import ndtr
+
+from pipeline.errors import ConfigError
+from pipeline.extract import aperture_weights, extract, reduce_frame, theoretical_variance
+from pipeline.maskbits import MaskBit
+from pipeline.rectify import resample_rows
+from pipeline.skylines import load_sky_lines
+
+NY, NX = 60, 600
+
+
+def _profile(x, *, centre=30.0, curvature=3.0, slope=1.5, sigma0=1.1):
+    trace = centre + curvature * ((x - NX / 2) / (NX / 2)) ** 2 + slope * (x - NX / 2) / (NX / 2)
+    sigma = sigma0 + 0.2 * x / NX
+    rows = np.arange(NY)[:, None]
+    prof = ndtr((rows + 0.5 - trace) / sigma) - ndtr((rows - 0.5 - trace) / sigma)
+    return trace, prof
+
+
+def _analytic_runs(rng, flux0, *, n_runs=25, sky=200.0, rn=4.0, half=4.5):
+    x = np.arange(NX)
+    trace, prof = _profile(x)
+    flux = flux0 * (1 + 0.3 * np.sin(x / 50.0))
+    obj = flux * prof
+    true_var = rn ** 2 + sky + obj
+    inap = np.abs(np.arange(NY)[:, None] - trace) <= half
+    in_ap = flux * np.where(inap, prof, 0).sum(axis=0)  # the flux inside the window
+    p_ap = np.where(inap, prof, 0) / np.where(inap, prof, 0).sum(axis=0)
+    out = []
+    for _ in range(n_runs):
+        d = rng.poisson(obj + sky) - sky + rng.normal(0, rn, obj.shape)
+        v = rn ** 2 + np.clip(d + sky, 0, None)  # data-based, as the CCD step writes it
+        out.append(extract(d, v, np.zeros(d.shape, np.uint8), trace, half_width_px=half,
+                           background_variance=np.full(d.shape, rn ** 2 + sky),
+                           signal_variance_factor=1.0))
+    return out, in_ap, theoretical_variance(p_ap, true_var)
+
+
+@pytest.mark.parametrize("flux0", [300.0, 3000.0])
+def test_optimal_extraction_is_unbiased_honest_and_efficient(rng, flux0):
+    runs, truth, min_var = _analytic_runs(rng, flux0)
+    fl = np.array([r.flux for r in runs])
+    var = np.array([r.variance for r in runs])
+    bias = np.sum(fl.mean(axis=0) - truth) / np.sum(truth)
+    err = np.sqrt(np.sum(var.mean(axis=0))) / np.sum(truth) / np.sqrt(len(runs))
+    assert abs(bias) < max(3 * err, 0.001)  # per-pixel S/N ~8 (flux0=300) and ~60
+    chi2 = np.mean((fl - truth) ** 2 / var)
+    assert 0.95 < chi2 < 1.05
+    # reported and actual variance at the Cramer-Rao bound of the true profile
+    assert np.mean(var.mean(axis=0) / min_var) == pytest.approx(1.0, abs=0.02)
+    assert np.mean(fl.var(axis=0, ddof=1) / min_var) == pytest.approx(1.0, abs=0.05)
+    box = np.array([r.boxcar_flux for r in runs])
+    assert abs(np.sum(box.mean(axis=0) - truth) / np.sum(truth)) < max(3 * err * 1.3, 0.001)
+
+
+def test_boxcar_to_optimal_variance_ratio_matches_gaussian_theory():
+    # background-limited Gaussian, sigma = 2 rows, aperture +-3 sigma: analytic ratio
+    # var_box / var_opt = N_pix * sum(P^2) (common practice; the library notes quote 1.65)
+    x = np.arange(200)
+    rows = np.arange(41)[:, None]
+    trace = np.full(x.size, 20.0)
+    prof = ndtr((rows + 0.5 - trace) / 2.0) - ndtr((rows - 0.5 - trace) / 2.0)
+    bkg = np.full(prof.shape, 100.0)
+    ex = extract(1e-6 * prof, bkg, np.zeros(prof.shape, np.uint8), trace, half_width_px=6.0,
+                 background_variance=bkg, signal_variance_factor=0.0)
+    p_in = np.where(np.abs(rows - trace) <= 6.0, prof, 0.0)
+    p_in = p_in / p_in.sum(axis=0)
+    # boxcar of 12 rows: 11 whole rows and two half rows, so its variance is 11.5 * B
+    box_w2 = np.sum(aperture_weights(trace, 41, 6.0)[:, 0] ** 2)
+    assert box_w2 == pytest.approx(11.5)
+    expected = box_w2 * np.sum(p_in[:, 0] ** 2)
+    assert np.median(ex.boxcar_variance / ex.variance) == pytest.approx(expected, rel=0.01)
+    assert expected == pytest.approx(1.65, abs=0.06)
+
+
+def test_deviant_pixels_are_rejected_and_flagged(rng):
+    x = np.arange(NX)
+    trace, prof = _profile(x)
+    obj = 5000.0 * prof
+    d = rng.poisson(obj + 100.0) - 100.0
+    v = 100.0 + obj
+    hits = [(int(round(trace[j])), j) for j in (50, 200, 410)]
+    for yy, j in hits:
+        d[yy + 1, j] += 4000.0  # unflagged cosmic rays inside the aperture
+    ex = extract(d, v, np.zeros(d.shape, np.uint8), trace, half_width_px=4.5,
+                 background_variance=np.full(d.shape, 100.0), signal_variance_factor=1.0)
+    for yy, j in hits:
+        assert ex.rejected[yy + 1, j]
+        assert abs(ex.flux[j] - 5000.0 * prof[:, j][np.abs(np.arange(NY) - trace[j]) <= 4.5].sum()) \
+            < 5 * np.sqrt(ex.variance[j])
+    assert ex.info["n_rejected"] <= 3 + 3  # a handful of false rejections at most
+
+
+def test_masked_pixels_flag_the_spectrum_only_when_they_matter():
+    x = np.arange(NX)
+    trace, prof = _profile(x)
+    d = 1000.0 * prof
+    v = np.full(d.shape, 10.0) + d
+    mask = np.zeros(d.shape, np.uint8)
+    core = np.round(trace).astype(int)
+    mask[core[100] - 3:core[100] + 4, 100] = MaskBit.SATURATED  # whole core: flagged
+    mask[core[300] + 3, 300] = MaskBit.COSMIC_RAY  # a wing pixel: estimate still good
+    ex = extract(d, v, mask, trace, half_width_px=4.5)
+    assert ex.mask[100] & MaskBit.SATURATED
+    assert ex.mask[300] == 0
+    assert ex.flux[300] == pytest.approx(1000.0 * prof[np.abs(np.arange(NY) - trace[300]) <= 4.5,
+                                                          300].sum(), rel=1e-3)
+
+
+def test_aperture_weights_cover_exactly_the_width():
+    w = aperture_weights(np.array([10.3, 20.0]), 40, 2.7)
+    np.testing.assert_allclose(w.sum(axis=0), 5.4)
+
+
+def test_extract_rejects_bad_input():
+    d = np.ones((10, 20))
+    with pytest.raises(ValueError, match="`trace_px` must have shape"):
+        extract(d, d, np.zeros(d.shape, np.uint8), np.zeros(19), half_width_px=2)
+    with pytest.raises(ValueError, match="`half_width_px`"):
+        extract(d, d, np.zeros(d.shape, np.uint8), np.zeros(20), half_width_px=0)
+    with pytest.raises(ValueError, match="`variance` must have the shape"):
+        extract(d, d[:, :5], np.zeros(d.shape, np.uint8), np.zeros(20), half_width_px=2)
+
+
+def test_reduce_frame_names_unknown_options():
+    d = np.ones((10, 20))
+    with pytest.raises(ConfigError, match="extraction: unknown option"):
+        reduce_frame(d, d, np.zeros(d.shape, np.uint8), np.ones((10, 20)),
+                     extraction={"aperture_fwhmm": 2})
+
+
+# -------------------------------------------------------------- against the demo simulator
+@pytest.fixture(scope="module")
+def star_reductions():
+    from test_sky import simulated_frame
+
+    lines = load_sky_lines()
+    out = []
+    for seed in (11, 12, 14):
+        f = simulated_frame("TRV-9", exptime_s=900.0, seed=seed)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            red = reduce_frame(f["data"], f["variance"], f["mask"], f["wave0"],
+                               line_wave_angstrom=lines["wavelength_air_angstrom"],
+                               spatial_scale_arcsec_per_px=0.4)
+        out.append((f, red))
+    return out
+
+
+def _truth_on_grid(truth, grid):
+    """Simulator electrons per column at the trace, integrated onto the output bins."""
+    tr = truth.info["trace"]
+    lam = np.asarray(tr["wavelength_angstrom"], float)
+    edges = np.r_[1.5 * lam[0] - 0.5 * lam[1], 0.5 * (lam[1:] + lam[:-1]),
+                  1.5 * lam[-1] - 0.5 * lam[-2]]
+    cum = np.r_[0.0, np.cumsum(tr["object_electrons"])]
+    return np.diff(np.interp(grid.edges_angstrom(), edges, cum, left=np.nan, right=np.nan))
+
+
+def test_simulated_star_flux_is_unbiased_and_errors_honest(star_reductions):
+    num = den = 0.0
+    chi2 = []
+    for f, red in star_reductions:
+        assert len(red.extractions) == 1
+        ex = red.extractions[0]
+        truth = _truth_on_grid(f["truth"], red.rectified.grid)
+        ok = (ex.mask == 0) & np.isfinite(truth)
+        ok[:5] = ok[-5:] = False
+        num += np.sum(ex.flux[ok] - truth[ok])
+        den += np.sum(truth[ok])
+        chi2.append(np.mean((ex.flux[ok] - truth[ok]) ** 2 / ex.variance[ok]))
+    # issue requirements: unbiased to 0.5 %, chi2/dof between 0.9 and 1.1
+    assert abs(num / den) < 0.005
+    assert 0.9 < np.mean(chi2) < 1.1
+
+
+def test_simulated_star_variance_near_theoretical_minimum(star_reductions):
+    for f, red in star_reductions[:1]:
+        ex = red.extractions[0]
+        wts = red.rectified.weights
+        obj = resample_rows(f["truth"].components["object"].astype(float), wts)
+        true_var = resample_rows(f["true_variance"], wts, power=2)
+        rows = np.arange(obj.shape[0])[:, None]
+        inap = np.abs(rows - ex.trace_px[None, :]) <= red.half_widths_px[0]
+        p_true = np.where(inap, obj, 0.0)
+        p_true = p_true / np.where(p_true.sum(axis=0) > 0, p_true.sum(axis=0), 1.0)
+        good = red.rectified.mask == 0
+        bound = theoretical_variance(p_true, true_var, good=good & inap)
+        ok = (ex.mask == 0) & np.isfinite(bound) & (bound > 0)
+        ok[:5] = ok[-5:] = False
+        ratio = np.median(ex.info["variance_pixels"][ok] / bound[ok])
+        # issue requirement: within 5 % of the minimum for the true profile (pixel noise);
+        # the sky model's correlated error comes on top (reported separately)
+        assert abs(ratio - 1.0) < 0.05
+        assert ex.info["variance_sky_term"] < 0.05
