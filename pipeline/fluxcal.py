@@ -72,6 +72,7 @@ __all__ = [
     "FluxTable", "SensitivityPoints", "SensitivityFit", "CalibratedSpectrum",
     "ExtractedSpectrum", "read_flux_table", "pixel_edges", "table_flux_in_pixels",
     "exclusion_mask", "gaussian_slit_fraction", "measure_sensitivity", "fit_with_rejection",
+    "TelluricTemplate", "telluric_template",
     "fit_sensitivity", "calibrate_spectrum", "normalise_object_name", "read_spectrum",
     "read_spectra_directory", "spectrum_airmass", "write_sensitivity", "read_sensitivity",
     "write_fluxed_spectrum", "fit_sensitivity_file", "flux_calibrate_file", "FLUX_UNIT",
@@ -835,6 +836,112 @@ def _binned_rms_percent(x, ratio, width):
 
 
 # ----------------------------------------------------------------------------
+# telluric bands from the standard
+# ----------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class TelluricTemplate:
+    """Transmission of the telluric bands at airmass 1, measured on standard stars.
+
+    Parameters
+    ----------
+    wave_angstrom : ndarray, shape (n,), Angstrom
+        Wavelengths inside the bands (increasing).
+    ln_transmission : ndarray, shape (n,)
+        ``ln t`` at airmass 1 (0 = no absorption).
+    sigma_ln : ndarray, shape (n,)
+        1-sigma error of ``ln_transmission`` (noise of the standards).
+    bands : list of (min, max), Angstrom
+        Outside them the transmission is 1.
+    airmass_exponent : float
+        ``ln t(X) = ln t(1) * X**airmass_exponent``; saturated molecular bands
+        grow more slowly than linearly with airmass (about 0.55-0.6 for O2 and
+        H2O; common practice, from memory).
+    info : dict
+    """
+
+    wave_angstrom: np.ndarray
+    ln_transmission: np.ndarray
+    sigma_ln: np.ndarray
+    bands: list
+    airmass_exponent: float = 0.6
+    info: dict = field(default_factory=dict)
+
+    def transmission(self, wave_angstrom, airmass):
+        """Transmission and its ln-error at ``airmass`` (1 and 0 outside the bands).
+
+        Returns
+        -------
+        transmission, sigma_ln : ndarray, same shape as ``wave_angstrom``
+        """
+        wave = np.asarray(wave_angstrom, dtype=float)
+        scale = float(airmass) ** self.airmass_exponent
+        inside = exclusion_mask(wave, self.bands) & (wave >= self.wave_angstrom[0]) & (
+            wave <= self.wave_angstrom[-1])
+        ln_t = np.where(inside, np.interp(wave, self.wave_angstrom, self.ln_transmission), 0.0)
+        sig = np.where(inside, np.interp(wave, self.wave_angstrom, self.sigma_ln), 0.0)
+        return np.exp(ln_t * scale), sig * scale
+
+
+def telluric_template(points, fit, bands, *, airmass_exponent=0.6):
+    """Telluric transmission from the standards' pixels in the bands.
+
+    Parameters
+    ----------
+    points : sequence of SensitivityPoints
+        The standards' measured sensitivity; inside the bands it is the true
+        sensitivity times the telluric transmission at the standard's airmass.
+    fit : SensitivityFit
+        Fitted with the bands excluded: the continuum under the bands.
+    bands : sequence of [min, max], Angstrom
+    airmass_exponent : float
+
+    Returns
+    -------
+    TelluricTemplate or None
+        None when no standard pixel falls in a band.
+
+    Notes
+    -----
+    ``ln t_1 = 0.4 ln(10) (m_obs - m_fit) / X**b`` per pixel; several
+    standards are averaged with inverse-variance weights on the grid of the
+    first one that covers a pixel. Masked pixels inside a band are
+    interpolated from their neighbours.
+    """
+    bands = _regions(bands, "bands")
+    if not bands:
+        return None
+    grids, lns, sigs = [], [], []
+    for p in points:
+        in_band = exclusion_mask(p.wave_angstrom, bands) & fit.inside(p.wave_angstrom)
+        if not in_band.any():
+            continue
+        scale = float(p.info.get("airmass", 1.0)) ** airmass_exponent
+        ln_t = 0.4 * math.log(10.0) * (p.sens_mag - fit.mag(p.wave_angstrom)) / scale
+        sig = p.sens_mag_err / _MAG_PER_REL / scale
+        ok = in_band & p.usable & np.isfinite(ln_t)
+        if ok.sum() < 2:
+            continue
+        grids.append(p.wave_angstrom[in_band])
+        lns.append(np.interp(p.wave_angstrom[in_band], p.wave_angstrom[ok], ln_t[ok]))
+        sigs.append(np.interp(p.wave_angstrom[in_band], p.wave_angstrom[ok], sig[ok]))
+    if not grids:
+        return None
+    grid = np.unique(np.concatenate(grids))
+    num = np.zeros(grid.size)
+    den = np.zeros(grid.size)
+    for g, ln_t, sig in zip(grids, lns, sigs):
+        covered = (grid >= g[0]) & (grid <= g[-1])
+        w = 1.0 / np.interp(grid[covered], g, sig) ** 2
+        num[covered] += w * np.interp(grid[covered], g, ln_t)
+        den[covered] += w
+    good = den > 0
+    return TelluricTemplate(grid[good], num[good] / den[good], 1.0 / np.sqrt(den[good]),
+                            [list(b) for b in bands], float(airmass_exponent),
+                            {"n_standards": len(grids)})
+
+
+# ----------------------------------------------------------------------------
 # calibration of a spectrum
 # ----------------------------------------------------------------------------
 
@@ -870,7 +977,7 @@ class CalibratedSpectrum:
 
 def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, exptime_s, airmass,
                        sensitivity, extinction=None, include_sensitivity_error=False,
-                       slit_fraction=None):
+                       slit_fraction=None, telluric=None):
     """Turn extracted electrons into flux density above the atmosphere.
 
     Parameters
@@ -894,6 +1001,9 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
         flux is divided by it (total flux of the point source). Leave None for
         extended sources (flux through the slit) or when the sensitivity
         includes the standard's slit loss.
+    telluric : TelluricTemplate, optional
+        Divide by the telluric transmission at ``airmass``; its error joins
+        ``calibration_variance``.
 
     Returns
     -------
@@ -929,6 +1039,10 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     if slit_fraction is not None:
         conversion = conversion * _same_shape(np.asarray(slit_fraction, dtype=float), wave,
                                               "slit_fraction", "wave_angstrom")
+    tell_sig = np.zeros_like(wave)
+    if telluric is not None:
+        tell, tell_sig = telluric.transmission(wave, airmass)
+        conversion = conversion * tell
     covered = np.isfinite(conversion) & (conversion > 0)
     finite = np.isfinite(counts) & np.isfinite(var)
     mask[~covered] |= maskbits.MASK_DTYPE(MaskBit.NO_COVERAGE)
@@ -939,13 +1053,14 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     cvar = np.full(wave.shape, np.nan)
     flux[good] = counts[good] / conversion[good]
     fvar[good] = var[good] / conversion[good] ** 2
-    cvar[good] = (flux[good] * sens_rel_err[good]) ** 2
+    cvar[good] = flux[good] ** 2 * (sens_rel_err[good] ** 2 + tell_sig[good] ** 2)
     if include_sensitivity_error:
         fvar = fvar + cvar
     beyond = covered & ((wave < sensitivity.wave_min) | (wave > sensitivity.wave_max))
     info = dict(exptime_s=exptime_s, airmass=airmass, n_extrapolated=int(beyond.sum()),
                 extinction=(extinction.source if extinction is not None else "none"),
                 sensitivity_error_included=bool(include_sensitivity_error),
+                telluric_corrected=telluric is not None,
                 n_no_coverage=int((~covered).sum()))
     return CalibratedSpectrum(wave, flux, fvar, mask, cvar, info)
 
@@ -1325,7 +1440,7 @@ def write_fluxed_spectrum(path, spectrum, calibrated, *, header_extra=None, cali
 # ----------------------------------------------------------------------------
 
 def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="ok", reason="",
-                      header_extra=None, inputs=(), calibrations=()):
+                      header_extra=None, inputs=(), calibrations=(), telluric=None):
     """Write a sensitivity product (layout in the module docstring).
 
     Parameters
@@ -1339,6 +1454,10 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
     standards : sequence of str
         Names of the standard stars (one per points entry).
     status, reason : str
+    telluric : TelluricTemplate, optional
+        Written as the ``TELLURIC`` table (``wavelength_angstrom``,
+        ``ln_transmission`` and ``sigma_ln`` at airmass 1; header ``AIRMEXP``
+        and the bands ``BANDnnLO``/``BANDnnHI``).
     """
     from astropy.io import fits
     from astropy.table import Table
@@ -1406,6 +1525,19 @@ def write_sensitivity(path, fit, points=(), *, setup="", standards=(), status="o
             from astropy.table import vstack
             hdus.append(fits.table_to_hdu(vstack(rows)))
             hdus[-1].name = "POINTS"
+    h["TELLCOR"] = (telluric is not None, "telluric template stored (HDU TELLURIC)")
+    if telluric is not None:
+        tt = Table({"wavelength_angstrom": telluric.wave_angstrom,
+                    "ln_transmission": telluric.ln_transmission,
+                    "sigma_ln": telluric.sigma_ln})
+        tt["wavelength_angstrom"].unit = "Angstrom"
+        hdu = fits.table_to_hdu(tt)
+        hdu.name = "TELLURIC"
+        hdu.header["AIRMEXP"] = (telluric.airmass_exponent, "ln t(X) = ln t(1) X**AIRMEXP")
+        for i, (lo, hi) in enumerate(telluric.bands, start=1):
+            hdu.header[f"BAND{i:02d}LO"] = (lo, "[Angstrom] telluric band start")
+            hdu.header[f"BAND{i:02d}HI"] = (hi, "[Angstrom] telluric band end")
+        hdus.append(hdu)
     provenance.stamp(h, inputs=list(inputs), calibrations=list(calibrations))
     path.parent.mkdir(parents=True, exist_ok=True)
     fits.HDUList(hdus).writeto(path, overwrite=True, checksum=True)
@@ -1452,6 +1584,15 @@ def read_sensitivity(path):
                 wave_min=float(mh["WAVEMIN"]), wave_max=float(mh["WAVEMAX"]),
                 max_extrapolation_angstrom=float(mh.get("EXTRAPOL", 0.0)),
                 info={"rms_percent": header.get("RMSPCT"), "path": str(path)})
+            if "TELLURIC" in names:
+                th = hdul["TELLURIC"].header
+                data = hdul["TELLURIC"].data
+                bands = [[float(th[f"BAND{i:02d}LO"]), float(th[f"BAND{i:02d}HI"])]
+                         for i in range(1, 100) if f"BAND{i:02d}LO" in th]
+                fit.info["telluric"] = TelluricTemplate(
+                    np.array(data["wavelength_angstrom"], dtype=float),
+                    np.array(data["ln_transmission"], dtype=float),
+                    np.array(data["sigma_ln"], dtype=float), bands, float(th["AIRMEXP"]))
     except OSError as exc:
         raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc
     return fit, header
@@ -1543,7 +1684,9 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                          knot_spacing_angstrom=250.0, degree=3, clip_sigma=3.0,
                          max_iterations=5, exclude_regions=(), error_floor_mag=0.002,
                          max_extrapolation_angstrom=150.0, slit_loss_correction=False,
-                         spatial_scale_arcsec_per_px=None, seeing_exponent=-0.2, site=None):
+                         spatial_scale_arcsec_per_px=None, seeing_exponent=-0.2,
+                         telluric_bands=(), telluric_correction=False,
+                         telluric_airmass_exponent=0.6, site=None):
     """Adapter of rule ``fit_sensitivity``: one sensitivity per setup.
 
     Parameters
@@ -1572,6 +1715,14 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         Unbinned pixel scale along the slit (for the slit-loss correction).
     seeing_exponent : float
         FWHM proportional to lambda**seeing_exponent.
+    telluric_bands : sequence of [min, max], Angstrom
+        Left out of the fit like ``exclude_regions``; with
+        ``telluric_correction`` the standards' absorption there is stored as a
+        :class:`TelluricTemplate` (see :func:`telluric_template`) that the
+        science calibration divides out, scaled to each frame's airmass with
+        ``telluric_airmass_exponent``.
+    telluric_correction : bool
+    telluric_airmass_exponent : float
     site : dict, optional
         ``latitude_deg``, ``longitude_deg``, ``height_m`` for spectra without AIRMASS.
 
@@ -1591,7 +1742,8 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
     if len(tables) != len(dirs):
         raise ValueError(f"`flux_tables` must name one table per standard spectra directory: "
                          f"{len(dirs)} directories, {len(tables)} tables")
-    regions = _regions(exclude_regions)
+    bands = _regions(telluric_bands, "telluric_bands")
+    regions = _regions(exclude_regions) + bands
     points, rows, used_names, inputs, problems, fwhms = [], [], [], [], [], []
     calibrations = list(dict.fromkeys(tables)) + _as_path_list(extinction_table)
     try:
@@ -1668,6 +1820,7 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
             "no standard-star spectrum given"
     meta = dict(setup=setup, fit_kind=fit_kind, degree=int(degree),
                 slit_loss_correction=bool(slit_loss_correction),
+                telluric_bands_angstrom=[list(b) for b in bands],
                 knot_spacing_angstrom=float(knot_spacing_angstrom), clip_sigma=float(clip_sigma),
                 exclude_regions_angstrom=[list(r) for r in regions],
                 extinction_table=(extinction.source if extinction is not None else "none"),
@@ -1698,8 +1851,12 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
                 rms_binned_percent=fit.info["rms_binned_percent"],
                 chi2_reduced=fit.info["chi2_reduced"], wave_min_angstrom=fit.wave_min,
                 wave_max_angstrom=fit.wave_max, standards=used_names)
+    telluric = (telluric_template(points, fit, bands,
+                                  airmass_exponent=telluric_airmass_exponent)
+                if telluric_correction and bands else None)
+    meta.update(telluric_correction=telluric is not None)
     write_sensitivity(sensitivity, fit, points, setup=setup, standards=used_names,
-                      inputs=inputs, calibrations=calibrations,
+                      inputs=inputs, calibrations=calibrations, telluric=telluric,
                       header_extra={"EXTTAB": ((extinction.source if extinction else "none"),
                                                "extinction table"),
                                     "SLITCORR": (bool(slit_loss_correction),
@@ -1839,7 +1996,7 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                                          spec.mask, exptime_s=exptime, airmass=airmass,
                                          sensitivity=fit, extinction=extinction,
                                          include_sensitivity_error=include_sensitivity_error,
-                                         slit_fraction=frac)
+                                         slit_fraction=frac, telluric=fit.info.get("telluric"))
                 target = out_dir / Path(path).name
                 extra = {
                     "FLUXCAL": (True, "flux calibrated"),
@@ -1847,6 +2004,8 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
                     "AIRMUSED": (airmass, f"airmass used ({how})"),
                     "NEXTRAP": (cal.info["n_extrapolated"], "pixels with extrapolated sensitivity"),
                     "SLITLOSS": (slit_note[0], slit_note[1]),
+                    "TELLCOR": (cal.info["telluric_corrected"],
+                                "telluric bands divided by the standard's template"),
                     "EXTTAB": ((extinction.source if extinction else "none"),
                                "extinction table"),
                     "SENSERR": ("included" if include_sensitivity_error else "not in VAR",

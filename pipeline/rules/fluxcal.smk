@@ -86,6 +86,9 @@ rule fit_sensitivity:
         spatial_scale_arcsec_per_px=INSTRUMENT["spatial_scale_arcsec_per_px"],
         seeing_exponent=FLUXCAL.get("seeing_exponent", -0.2),
         exclude_regions=FLUXCAL.get("exclude_regions_angstrom", []),
+        telluric_bands=FLUXCAL.get("telluric_bands_angstrom", []),
+        telluric_correction=FLUXCAL.get("telluric_correction", False),
+        telluric_airmass_exponent=FLUXCAL.get("telluric_airmass_exponent", 0.6),
         site=_FC_SITE,
     log:
         log_path("fit_sensitivity", "{setup}"),
@@ -113,6 +116,7 @@ rule flux_calibrate:
         seeing_exponent=FLUXCAL.get("seeing_exponent", -0.2),
         extended_fwhm_ratio=FLUXCAL.get("extended_fwhm_ratio", 1.5),
         exclude_regions=lambda wc: (FLUXCAL.get("exclude_regions_angstrom", [])
+                                    + FLUXCAL.get("telluric_bands_angstrom", [])
                                     if _fc_own_table(wc.frame) else []),
         site=_FC_SITE,
     log:
