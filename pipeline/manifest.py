@@ -76,6 +76,22 @@ def _frame_from_name(name, frame_ids):
     return best
 
 
+def _listing_status(path):
+    """Status of a fluxed-spectra listing: 'uncalibrated' (with the reasons) when any
+    of its spectra could not be flux-calibrated."""
+    try:
+        listing = Table.read(path, format="ascii.ecsv")
+    except Exception as exc:
+        return "unreadable", str(exc)
+    if "status" not in listing.colnames:
+        return "ok", ""
+    bad = listing[listing["status"] != "calibrated"]
+    if not len(bad):
+        return "ok", ""
+    reasons = sorted({str(r) for r in bad["reason"]}) if "reason" in bad.colnames else []
+    return "uncalibrated", "; ".join(reasons)
+
+
 def build_manifest(out_dir, *, expected=(), night_log=None):
     """Build the manifest table of everything below ``out_dir``.
 
@@ -118,8 +134,9 @@ def build_manifest(out_dir, *, expected=(), night_log=None):
             sources = sources or [Path(str(info["path"])).name]
             obj = obj or str(info["object"])
             setup = setup or str(info["setup"])
+        status, note = _listing_status(path) if kind == "fluxed_listing" else ("ok", "")
         records[rel] = dict(kind=kind, path=rel, source_frames=",".join(sources), object=obj,
-                            setup=setup, status="ok", note="")
+                            setup=setup, status=status, note=note)
 
     for exp in expected:
         exp_path = Path(exp)

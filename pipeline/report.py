@@ -43,6 +43,24 @@ _SECTION_TITLES = {
 }
 _MAX_ROWS = 60
 
+#: The headline numbers of each kind of QA table (read from the table's metadata), shown
+#: together at the top of the report; (file-name suffix, title, metadata keys).
+_GLANCE = (
+    ("master_bias_", "_qa.ecsv", "Bias: read noise",
+     ("n_frames", "read_noise_e_configured_gain", "read_noise_configured_e",
+      "read_noise_within_tolerance", "mean_level_adu")),
+    ("master_flat_", "_qa.ecsv", "Flat: gain and bad pixels",
+     ("n_frames", "gain_measured_e_per_adu", "gain_configured_e_per_adu", "gain_within_tolerance",
+      "n_bad", "response_scatter")),
+    ("", "_qa.ecsv", "Wavelength solutions",
+     ("setup", "n_used", "n_rejected", "rms_angstrom", "rms_px", "rms_km_s", "tilt_nominal_deg",
+      "tilt_fitted_deg", "focal_length_nominal_mm", "focal_length_fitted_mm")),
+    ("", "_flexure.ecsv", "Flexure from night-sky lines",
+     ("status", "n_used", "shift_px", "shift_err_px", "shift_kms")),
+    ("sensitivity_", "_qa.ecsv", "Sensitivity fits",
+     ("setup", "status", "rms_percent", "rms_binned_percent", "reason")),
+)
+
 
 def _fmt(value):
     if value is np.ma.masked:
@@ -108,6 +126,40 @@ def _table_section(out_dir, paths):
     return "\n".join(parts)
 
 
+def _glance_section(out_dir, manifest):
+    parts = []
+    paths = [str(r["path"]) for r in manifest if r["status"] == "ok"]
+    for prefix, suffix, title, keys in _GLANCE:
+        rows = []
+        for rel in paths:
+            name = Path(rel).name
+            if not (name.startswith(prefix) and name.endswith(suffix)):
+                continue
+            if title == "Wavelength solutions" and not rel.startswith("wavelength/"):
+                continue
+            try:
+                meta = Table.read(out_dir / rel, format="ascii.ecsv").meta
+            except Exception:
+                continue
+            present = [k for k in keys if k in meta]
+            if present:
+                rows.append((name, {k: meta[k] for k in present}))
+        if not rows:
+            continue
+        cols = [k for k in keys if any(k in r[1] for r in rows)]
+        table = Table(rows=[[name] + [_fmt(m.get(k, "")) for k in cols] for name, m in rows],
+                      names=["file"] + cols, dtype=[str] * (len(cols) + 1))
+
+        def flag(row):
+            text = " ".join(str(row[c]) for c in table.colnames)
+            return "bad" if ("False" in text or "failed" in text) else ""
+
+        parts.append(f"<h3>{html.escape(title)}</h3>" + _html_table(table, row_class=flag))
+    if not parts:
+        return ""
+    return "<h2>At a glance</h2>" + "\n".join(parts)
+
+
 def render_night_report(out_dir, manifest, night_log, *, title="Night report"):
     """Return the report as an HTML string.
 
@@ -129,6 +181,7 @@ def render_night_report(out_dir, manifest, night_log, *, title="Night report"):
             f"{len(night_log)} raw files; {status.get('ok', 0)} products written, "
             f"{status.get('missing', 0)} missing.</p>"]
 
+    body.append(_glance_section(out_dir, manifest))
     body.append("<h2>Night log</h2>")
     counts = Table(rows=[[t, s, n] for (t, s), n in sorted(types.items())] or None,
                    names=("frame type", "status", "files"), dtype=[str, str, int])
