@@ -69,3 +69,26 @@ def test_report_shows_qa_numbers_figures_and_reasons(tmp_path):
     assert "<img src='qa/arc_001_residuals.png'" in text
     assert "truncated file" in text
     assert "Wavelength solutions" in text
+
+
+def test_uncalibrated_fluxed_listing_is_flagged_with_its_reason(tmp_path):
+    out = _out_dir(tmp_path)
+    (out / "spectra_fluxed" / "sci_002").mkdir(parents=True)
+    Table({"object": ["TFG-42"], "status": ["uncalibrated"],
+           "reason": ["no standard star in setup SETUPA"]}).write(
+        out / "spectra_fluxed" / "sci_002" / "fluxed_spectra.ecsv", format="ascii.ecsv")
+    table = build_manifest(out, night_log=_night_log())
+    (row,) = table[table["kind"] == "fluxed_listing"]
+    assert row["status"] == "uncalibrated"
+    assert "no standard star" in row["note"]
+
+
+def test_report_glance_table_carries_the_wavelength_rms(tmp_path):
+    out = _out_dir(tmp_path)
+    write_manifest_file(products=[], night_log=str(out / "night_log.ecsv"),
+                        manifest=str(out / "manifest.ecsv"), out_dir=str(out))
+    write_night_report_file(manifest=str(out / "manifest.ecsv"), night_log=str(out / "night_log.ecsv"),
+                            report=str(out / "r.html"), out_dir=str(out))
+    text = (out / "r.html").read_text()
+    glance = text.split("<h2>At a glance</h2>")[1].split("<h2>")[0]
+    assert "Wavelength solutions" in glance and "0.0158" in glance
