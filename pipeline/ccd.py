@@ -450,10 +450,13 @@ def _clipped_mean(stack, *, sigma=3.0, maxiters=5, noise=None):
 
     Fast path: pixels with no value farther than ``sigma`` times the noise
     from the mean of the other n-2 values (minimum and maximum left out) take
-    the plain mean. The few remaining pixels (outliers, non-finite values) are
-    clipped iteratively about their median (:func:`_clip_columns`). With a
-    noise model the threshold is ``sigma`` times the expected noise; without
-    one it is ``sigma`` times the sample standard deviation.
+    the plain mean. With a noise model, pixels with exactly one such value
+    take the mean of the others when all of them lie within the threshold of
+    that mean (converged). The few remaining pixels (several outliers,
+    non-finite values) are clipped iteratively, starting about their median
+    (:func:`_clip_columns`). With a noise model the threshold is ``sigma``
+    times the expected noise; without one it is ``sigma`` times the sample
+    standard deviation.
 
     Returns
     -------
@@ -500,10 +503,35 @@ def _clipped_mean(stack, *, sigma=3.0, maxiters=5, noise=None):
     mean = total / np.float32(n)
     n_used = np.full(mean.shape, n, dtype=np.int32)
     if suspect.any():
-        sub = stack[:, suspect]
-        m, k = _clip_columns(sub, sigma=sigma, maxiters=maxiters, noise=noise)
-        mean[suspect] = m
-        n_used[suspect] = k
+        idx = np.nonzero(suspect)
+        sub = stack[(slice(None),) + idx]
+        careful = np.ones(sub.shape[1], bool)
+        if noise is not None and n >= 4:
+            # Most suspects hold one value beyond the threshold (a Gaussian tail or a
+            # single hit). Drop it; keep the result when every remaining value lies
+            # within the threshold of the new mean (the clipping has converged).
+            # Everything else takes the careful median-started path.
+            c0 = center[idx]
+            limit = np.float32(sigma) * noise.sigma(c0, n)
+            out = np.abs(sub - c0) > limit
+            single = out.sum(axis=0) == 1
+            if single.any():
+                s1, o1 = sub[:, single], out[:, single]
+                m1 = (np.where(o1, 0, s1).sum(axis=0, dtype=np.float64) / (n - 1)).astype(
+                    np.float32)
+                lim1 = np.float32(sigma) * noise.sigma(m1, n)
+                lim1 = np.broadcast_to(lim1, s1.shape)
+                inside = np.abs(s1 - m1) <= lim1
+                ok = (inside == ~o1).all(axis=0)
+                pos = np.nonzero(single)[0][ok]
+                mean[tuple(i[pos] for i in idx)] = m1[ok]
+                n_used[tuple(i[pos] for i in idx)] = n - 1
+                careful[pos] = False
+        if careful.any():
+            rest = tuple(i[careful] for i in idx)
+            m, k = _clip_columns(sub[:, careful], sigma=sigma, maxiters=maxiters, noise=noise)
+            mean[rest] = m
+            n_used[rest] = k
     return mean, n_used
 
 
