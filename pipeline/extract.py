@@ -555,7 +555,10 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
     sky_pixels, _ = trc.object_mask(data, variance, mask, wave_map, fwhm_guess_px=fwhm_px,
                                     snr_min=so["object_snr_min"], pad_fwhm=so["object_pad_fwhm"],
                                     max_objects=to["max_objects"])
+    # variance = a + b * signal over all good pixels (objects give the slope its lever arm)
+    var_coef = sky_mod.variance_model_coefficients(data, variance, mask)
     model = sky_mod.fit_sky(data, variance, mask, wave_map, sky_pixels,
+                            variance_coefficients=var_coef,
                             knot_spacing_px=so["knot_spacing_px"],
                             spatial_order=so["spatial_order"],
                             fit_illumination=so["fit_illumination"],

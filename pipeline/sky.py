@@ -25,8 +25,8 @@ Choices
   samples are merged, so frames with untilted lines still have a well-posed
   fit.
 * Weights use a *model* variance ``a + b * max(S, 0)``: the coefficients of
-  ``var ≈ a + b * data`` are fitted once on the sky pixels (read noise and the
-  electrons-per-count factor). Weighting by the data's own variance would bias
+  ``var ≈ a + b * data`` are fitted once on the frame (read noise and the
+  variance per electron). Weighting by the data's own variance would bias
   the fit low by about one electron, since low pixels would get high weights.
   The first iteration uses the pixel variances.
 * The sky is multiplied by a slit-illumination function ``I(y)`` (a
@@ -112,8 +112,17 @@ def variance_model_coefficients(data, variance, mask=None, *, clip_sigma=4.0):
 
     Notes
     -----
-    Uses :class:`astropy.modeling.fitting.FittingWithOutlierRemoval` with a
-    linear least-squares fitter and :func:`astropy.stats.sigma_clip`.
+    Fit over as wide a range of signal as possible (all good pixels of the
+    frame, objects included): on a faint sky alone the slope is poorly
+    determined. Only pixels above 5 times the read noise are used, because a
+    data-based variance ``rn^2 + max(data, 0)`` is not linear near zero; with
+    fewer than 50 of them, ``b = 1`` (data in electrons) and ``a`` is the
+    median of ``variance - max(data, 0)``. Weighted linear least squares with weights ``1 / (a + |data|)^2``
+    (the scatter of a data-based variance grows with the signal, e.g. through
+    the flat field), iterated with sigma clipping of the relative residuals:
+    :class:`astropy.modeling.fitting.FittingWithOutlierRemoval` with
+    :class:`~astropy.modeling.fitting.LinearLSQFitter` and
+    :func:`astropy.stats.sigma_clip`.
     """
     from astropy.modeling import fitting, models
     from astropy.stats import sigma_clip
@@ -131,8 +140,23 @@ def variance_model_coefficients(data, variance, mask=None, *, clip_sigma=4.0):
         d, v = d[::step], v[::step]
     fitter = fitting.FittingWithOutlierRemoval(fitting.LinearLSQFitter(), sigma_clip,
                                                niter=3, sigma=clip_sigma)
-    fitted, _ = fitter(models.Polynomial1D(1), d, v)
-    return float(fitted.c0.value), float(fitted.c1.value)
+    a = max(float(np.percentile(v, 5)), 1e-6)
+    # near zero a data-based variance (read noise^2 + max(data, 0)) is not linear in the
+    # data: fit only pixels well above the read noise
+    bright = d > 5.0 * np.sqrt(a)
+    if bright.sum() < 50 or np.ptp(d[bright]) < 3.0 * np.sqrt(a):
+        return float(np.median(v - np.clip(d, 0.0, None))), 1.0
+    d, v = d[bright], v[bright]
+    b = 1.0
+    for _ in range(3):
+        weights = 1.0 / (a + np.abs(d))
+        fitted, _ = fitter(models.Polynomial1D(1), d, v, weights=weights)
+        a_new, b = float(fitted.c0.value), float(fitted.c1.value)
+        if abs(a_new - a) < 1e-3 * max(abs(a), 1.0):
+            a = a_new
+            break
+        a = max(a_new, 1e-6)
+    return a, b
 
 
 def _breakpoints(lam, spacing, min_points):
@@ -282,7 +306,7 @@ def _illumination(rows_u, d_u, base_u, var_u, keep, ny, *, bridge_rows=20, min_r
 
 def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
             spatial_order=0, fit_illumination=True, reject_sigma=5.0, max_iterations=8,
-            min_points_per_interval=None):
+            min_points_per_interval=None, variance_coefficients=None):
     """Fit a B-spline sky to the sky pixels of a frame in native coordinates.
 
     Parameters
@@ -311,6 +335,11 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
     min_points_per_interval : int, optional
         Smallest number of samples between breakpoints; default
         ``8 * (spatial_order + 1)``.
+    variance_coefficients : (float, float), optional
+        ``(a, b)`` of ``variance ≈ a + b * data`` (see
+        :func:`variance_model_coefficients`); default: fitted on the sky
+        pixels (better: on all good pixels of the frame, as
+        :func:`pipeline.extract.reduce_frame` does).
 
     Returns
     -------
@@ -352,7 +381,10 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
     n_usable = int(usable.sum())
     if n_usable < 50 * kk:
         raise ValueError(f"only {n_usable} usable sky pixels; need at least {50 * kk}")
-    a_var, b_var = variance_model_coefficients(data[usable], variance[usable])
+    if variance_coefficients is None:
+        a_var, b_var = variance_model_coefficients(data[usable], variance[usable])
+    else:
+        a_var, b_var = (float(c) for c in variance_coefficients)
     if not (b_var > 0 and np.isfinite(a_var)):
         a_var, b_var = float(np.median(variance[usable])), 0.0
     a_var = max(a_var, 1e-6)
