@@ -26,6 +26,9 @@ if _demo_night_needed():
                    check=True, cwd=workflow.basedir)
 
 NIGHT = take_inventory(RAW, INSTRUMENT)
+# Snakemake hides warnings raised while it parses; say the rejections here (also in night_log.ecsv).
+for _problem in NIGHT.problems():
+    print(f"night inventory: {_problem}", file=sys.stderr)
 
 
 def out(*parts):
