@@ -112,4 +112,4 @@ def test_nothing_left_to_do_after_the_run(reduced_night):
 def test_bad_config_value_stops_the_run_naming_the_key(reduced_night):
     result = _snakemake("-n", "--config", *reduced_night["config"], "out_dirr=elsewhere", check=False)
     assert result.returncode != 0
-    assert "unknown key(s) 'out_dirr'" in result.stderr
+    assert "unknown key(s) 'out_dirr'" in result.stdout + result.stderr
