@@ -44,10 +44,12 @@ fit.
 
 Variance model and the sky term
 -------------------------------
-``V_ij = B_ij + g_ij * max(f_j P_ij, 0)`` with ``B`` the noise-free variance of
-the background (read noise and sky photons, resampled exactly by the
-rectification) and ``g`` the variance per electron of object signal
-(rectify weight ratio Σw²/Σw times the frame's electrons-per-count factor).
+``V_ij = B_ij + g_ij m + q_ij (m² + 2 S_ij m)``, ``m = max(f_j P_ij, 0)``, with
+``B`` the noise-free variance of the background (read noise and sky photons,
+resampled exactly by the rectification), ``g`` the variance per electron of
+object signal (rectify weight ratio Σw²/Σw times the frame's factor ``b``) and
+``q`` the flat-field term (``c Σw²/(Σw)²``) on top of the sky ``S``; ``a, b, c``
+come from :func:`pipeline.sky.variance_model_coefficients`.
 Without them (plain :func:`extract` calls) ``V`` is the given variance.
 
 The sky model's own error is common to all rows at one wavelength; it is
@@ -210,7 +212,8 @@ def _smooth_flux(flux, width):
 
 
 def extract(data, variance, mask, trace_px, *, half_width_px, background_variance=None,
-            signal_variance_factor=None, sky=None, sky_variance=None, profile_knot_px=0.5,
+            signal_variance_factor=None, signal_variance_quadratic=None, sky=None,
+            sky_variance=None, profile_knot_px=0.5,
             profile_wave_order=2, profile_smooth_px=31, reject_sigma=5.0, max_iterations=20,
             profile_error_fraction=0.02, max_masked_profile=0.5):
     """Boxcar and optimal extraction of one object.
@@ -231,6 +234,9 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     signal_variance_factor : ndarray or float, optional
         Variance per electron of object signal; with ``background_variance``
         it defines the model variance (see module notes).
+    signal_variance_quadratic : ndarray or float, optional
+        Flat-field term: the model variance gains ``q * (m**2 + 2 * sky * m)``
+        for object signal ``m`` on top of ``sky`` (0 if not given).
     sky : ndarray, shape (ny, n), optional
         Sky model (for the SKY spectrum of the product).
     sky_variance : ndarray, shape (ny, n), optional
@@ -291,6 +297,10 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     if use_model:
         bkg = np.asarray(background_variance, float)
         gfac = np.broadcast_to(np.asarray(signal_variance_factor, float), data.shape)
+        qfac = np.broadcast_to(np.asarray(0.0 if signal_variance_quadratic is None
+                                          else signal_variance_quadratic, float), data.shape)
+        sky_level = (np.zeros(data.shape) if sky is None
+                     else np.clip(np.asarray(sky, float), 0.0, None))
 
     rows = np.arange(ny, dtype=float)[:, None]
     offset = np.broadcast_to(rows - trace[None, :], data.shape)
@@ -309,7 +319,8 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     chi2 = float("nan")
 
     def noise_free(f_col):
-        v = bkg + gfac * np.clip(f_col[None, :] * prof, 0.0, None)
+        m = np.clip(f_col[None, :] * prof, 0.0, None)
+        v = bkg + gfac * m + qfac * (m * m + 2.0 * sky_level * m)
         return np.where(v > 0, v, np.inf)
 
     for n_iter in range(1, max_iterations + 1):
@@ -318,8 +329,9 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
         if not use_model:
             var_fit = np.where(pix_var > 0, pix_var, np.inf)
         elif prof is None:  # first pass only: no profile yet
-            var_fit = np.where(bkg + gfac * np.clip(data, 0.0, None) > 0,
-                               bkg + gfac * np.clip(data, 0.0, None), np.inf)
+            m0 = np.clip(data, 0.0, None)
+            v0 = bkg + gfac * m0 + qfac * (m0 * m0 + 2.0 * sky_level * m0)
+            var_fit = np.where(v0 > 0, v0, np.inf)
         else:
             var_fit = noise_free(f_smooth)
         prof, chi2 = _fit_profile(data, var_fit, good, inap, offset, wave_u, f_smooth,
@@ -445,6 +457,8 @@ class FrameReduction:
         Noise-free variance of read noise and sky photons.
     signal_variance_factor : ndarray, shape (ny, n_pix)
         Variance per electron of object signal.
+    signal_variance_quadratic : ndarray, shape (ny, n_pix)
+        Flat-field variance term (see :func:`extract`).
     sky_region : ndarray of bool, shape (ny, n_pix)
         Pixels used as sky (objects masked).
     wave_map : ndarray, shape (ny, nx), Angstrom
@@ -462,6 +476,7 @@ class FrameReduction:
     sky_variance: np.ndarray
     background_variance: np.ndarray
     signal_variance_factor: np.ndarray
+    signal_variance_quadratic: np.ndarray
     sky_region: np.ndarray
     wave_map: np.ndarray
     flexure: object
@@ -588,10 +603,12 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
     sky_err_r = rct.resample_rows(np.sqrt(model.sky_variance), wts)  # fully correlated locally
     bkg_r = rct.resample_rows(model.background_variance, wts, power=2)
     wsum = wts.weight_sum
-    gfac = model.info["variance_coefficients"][1] * np.where(
-        wsum > 0, wts.weight_sq_sum / np.where(wsum > 0, wsum, 1.0), 0.0)
+    _, b_coef, c_coef = model.info["variance_coefficients"]
+    safe = np.where(wsum > 0, wsum, 1.0)
+    gfac = b_coef * np.where(wsum > 0, wts.weight_sq_sum / safe, 0.0)
+    qfac = c_coef * np.where(wsum > 0, wts.weight_sq_sum / safe ** 2, 0.0)
     sky_region = rct.resample_rows(sky_pixels.astype(float), wts) > 0.5 * wsum
-    for arr in (sky_r, sky_err_r, bkg_r, gfac):
+    for arr in (sky_r, sky_err_r, bkg_r, gfac, qfac):
         arr[~wts.covered] = 0.0
 
     wave_grid = grid.centres_angstrom()
@@ -608,15 +625,16 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
     for tr, h in zip(traces, half):
         extractions.append(extract(
             rect.data, rect.variance, rect.mask, tr.position_px(wave_grid), half_width_px=h,
-            background_variance=bkg_r, signal_variance_factor=gfac, sky=sky_r,
+            background_variance=bkg_r, signal_variance_factor=gfac,
+            signal_variance_quadratic=qfac, sky=sky_r,
             sky_variance=sky_err_r ** 2, profile_knot_px=eo["profile_knot_px"],
             profile_wave_order=eo["profile_wave_order"],
             profile_smooth_px=eo["profile_smooth_px"], reject_sigma=eo["reject_sigma"],
             max_iterations=eo["max_iterations"],
             profile_error_fraction=eo["profile_error_fraction"],
             max_masked_profile=eo["max_masked_profile"]))
-    return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, sky_region, wave_corr, flex,
-                          model.info, traces, half, extractions)
+    return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, qfac, sky_region, wave_corr,
+                          flex, model.info, traces, half, extractions)
 
 
 # =============================================================================== FITS adapter
@@ -711,7 +729,7 @@ def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, s
         shape that faint objects borrow).
     rectified : str
         Output: rectified, sky-subtracted frame (frames layout + SKY, SKYVAR,
-        BKGVAR, SIGVARF, SKYREG extensions; FITS WCS AWAV x SLITPOS).
+        BKGVAR, SIGVARF, SIGVARQ, SKYREG extensions; FITS WCS AWAV x SLITPOS).
     flexure_table, traces : str
         Outputs: ECSV tables of the flexure lines and of the traces.
     spectra : str
@@ -780,9 +798,10 @@ def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, s
     base["SKYSUB"] = (True, "night sky subtracted (Kelson 2003 b-spline)")
     base["VARCORR"] = (round(float(red.rectified.info["variance_correlation"]), 4),
                        "var of long sums along x / sum of pixel vars")
-    a_var, b_var = red.sky_info["variance_coefficients"]
+    a_var, b_var, c_var = red.sky_info["variance_coefficients"]
     base["VARRN"] = (round(float(a_var), 4), "variance model: constant term, e2")
     base["VARGAIN"] = (round(float(b_var), 5), "variance model: e2 per e of signal")
+    base["VARFLAT"] = (float(f"{c_var:.5g}"), "variance model: flat term, per e2 of signal")
     inputs = [frame, wavelength] + ([reference_path] if reference_path else [])
 
     # -- rectified frame
@@ -807,6 +826,8 @@ def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, s
                    "sky, electron2"),
              image(red.signal_variance_factor, "SIGVARF", "variance per electron of object "
                    "signal"),
+             image(red.signal_variance_quadratic, "SIGVARQ", "flat-field variance term q: "
+                   "q*(m**2+2*SKY*m) for signal m"),
              image(red.sky_region, "SKYREG", "1 = pixel used as sky", dtype=np.uint8)]
     write_frame(Frame(red.rectified.data, red.rectified.variance, red.rectified.mask, rhdr,
                       cal.unit), rectified, extra_hdus=extra)

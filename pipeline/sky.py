@@ -24,9 +24,9 @@ Choices
   (default 0.6 px); intervals with fewer than ``min_points_per_interval``
   samples are merged, so frames with untilted lines still have a well-posed
   fit.
-* Weights use a *model* variance ``a + b * max(S, 0)``: the coefficients of
-  ``var ≈ a + b * data`` are fitted once on the frame (read noise and the
-  variance per electron). Weighting by the data's own variance would bias
+* Weights use a *model* variance ``a + b S + c S^2`` (S >= 0): the
+  coefficients of ``var ≈ a + b * data + c * data^2`` are fitted once on the
+  frame (read noise, variance per electron, flat-field error). Weighting by the data's own variance would bias
   the fit low by about one electron, since low pixels would get high weights.
   The first iteration uses the pixel variances.
 * The sky is multiplied by a slit-illumination function ``I(y)`` (a
@@ -77,9 +77,9 @@ class SkyModel:
     rejected : ndarray of bool, shape (ny, nx)
         Sky pixels rejected as outliers in the last iteration.
     background_variance : ndarray, shape (ny, nx), electron^2
-        Noise-free variance a pixel holding only sky would have: ``a + b * max(S, 0)``.
+        Noise-free variance a pixel holding only sky would have: ``a + b S + c S^2``.
     info : dict
-        ``variance_coefficients`` (a in electron^2, b in electron),
+        ``variance_coefficients`` (a in electron^2, b in electron, c),
         ``n_breakpoints``, ``n_points``, ``n_rejected``, ``n_iterations``,
         ``chi2_dof`` (of the last fit, model variance), ``spatial_order``,
         ``knot_spacing_angstrom``.
@@ -93,7 +93,7 @@ class SkyModel:
 
 
 def variance_model_coefficients(data, variance, mask=None, *, clip_sigma=4.0):
-    """Fit ``variance ≈ a + b * data`` over good pixels.
+    """Fit ``variance ≈ a + b * data + c * data**2`` over good pixels.
 
     Parameters
     ----------
@@ -102,13 +102,14 @@ def variance_model_coefficients(data, variance, mask=None, *, clip_sigma=4.0):
     mask : ndarray of uint8 or bool, optional
         Nonzero = excluded.
     clip_sigma : float
-        Outlier rejection of the linear fit.
+        Outlier rejection of the fit.
 
     Returns
     -------
     tuple of float
-        ``(a, b)``: read-noise-like term (electron^2) and variance per electron
-        of signal (1 for a perfectly flat-fielded frame in electrons).
+        ``(a, b, c)``: read-noise-like term (electron^2), variance per electron
+        of signal (1 for a frame in electrons) and the relative variance of
+        the flat field (``c * data**2``, the flat-field error the CCD step adds).
 
     Notes
     -----
@@ -116,13 +117,13 @@ def variance_model_coefficients(data, variance, mask=None, *, clip_sigma=4.0):
     frame, objects included): on a faint sky alone the slope is poorly
     determined. Only pixels above 5 times the read noise are used, because a
     data-based variance ``rn^2 + max(data, 0)`` is not linear near zero; with
-    fewer than 50 of them, ``b = 1`` (data in electrons) and ``a`` is the
-    median of ``variance - max(data, 0)``. Weighted linear least squares with weights ``1 / (a + |data|)^2``
-    (the scatter of a data-based variance grows with the signal, e.g. through
-    the flat field), iterated with sigma clipping of the relative residuals:
-    :class:`astropy.modeling.fitting.FittingWithOutlierRemoval` with
+    fewer than 50 of them, ``b = 1`` (data in electrons), ``c = 0`` and ``a``
+    is the median of ``variance - max(data, 0)``. Weighted linear least squares
+    with weights ``1 / (a + |data|)`` (relative residuals), with sigma
+    clipping: :class:`astropy.modeling.fitting.FittingWithOutlierRemoval` with
     :class:`~astropy.modeling.fitting.LinearLSQFitter` and
-    :func:`astropy.stats.sigma_clip`.
+    :func:`astropy.stats.sigma_clip`. A negative ``c`` is set to 0 and the line
+    refitted.
     """
     from astropy.modeling import fitting, models
     from astropy.stats import sigma_clip
@@ -135,28 +136,31 @@ def variance_model_coefficients(data, variance, mask=None, *, clip_sigma=4.0):
     if ok.sum() < 10:
         raise ValueError(f"need at least 10 good pixels to model the variance, got {ok.sum()}")
     d, v = d[ok], v[ok]
-    if d.size > 200000:  # a regular subsample is plenty for two coefficients
+    if d.size > 200000:  # a regular subsample is plenty for three coefficients
         step = d.size // 200000 + 1
         d, v = d[::step], v[::step]
     fitter = fitting.FittingWithOutlierRemoval(fitting.LinearLSQFitter(), sigma_clip,
                                                niter=3, sigma=clip_sigma)
     a = max(float(np.percentile(v, 5)), 1e-6)
-    # near zero a data-based variance (read noise^2 + max(data, 0)) is not linear in the
-    # data: fit only pixels well above the read noise
     bright = d > 5.0 * np.sqrt(a)
     if bright.sum() < 50 or np.ptp(d[bright]) < 3.0 * np.sqrt(a):
-        return float(np.median(v - np.clip(d, 0.0, None))), 1.0
+        return float(np.median(v - np.clip(d, 0.0, None))), 1.0, 0.0
     d, v = d[bright], v[bright]
-    b = 1.0
+    quadratic = np.ptp(d) > 100.0 * np.sqrt(a)  # enough lever arm to see a flat-field term
+    coef = (a, 1.0, 0.0)
     for _ in range(3):
-        weights = 1.0 / (a + np.abs(d))
-        fitted, _ = fitter(models.Polynomial1D(1), d, v, weights=weights)
-        a_new, b = float(fitted.c0.value), float(fitted.c1.value)
-        if abs(a_new - a) < 1e-3 * max(abs(a), 1.0):
-            a = a_new
+        weights = 1.0 / (coef[0] + np.abs(d))
+        fitted, _ = fitter(models.Polynomial1D(2 if quadratic else 1), d, v, weights=weights)
+        new = (float(fitted.c0.value), float(fitted.c1.value),
+               float(fitted.c2.value) if quadratic else 0.0)
+        if quadratic and new[2] < 0:
+            quadratic = False
+            continue
+        done = abs(new[0] - coef[0]) < 1e-3 * max(abs(coef[0]), 1.0)
+        coef = (max(new[0], 1e-6), new[1], new[2])
+        if done:
             break
-        a = max(a_new, 1e-6)
-    return a, b
+    return coef
 
 
 def _breakpoints(lam, spacing, min_points):
@@ -335,8 +339,8 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
     min_points_per_interval : int, optional
         Smallest number of samples between breakpoints; default
         ``8 * (spatial_order + 1)``.
-    variance_coefficients : (float, float), optional
-        ``(a, b)`` of ``variance ≈ a + b * data`` (see
+    variance_coefficients : (float, float, float), optional
+        ``(a, b, c)`` of ``variance ≈ a + b * data + c * data**2`` (see
         :func:`variance_model_coefficients`); default: fitted on the sky
         pixels (better: on all good pixels of the frame, as
         :func:`pipeline.extract.reduce_frame` does).
@@ -382,12 +386,16 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
     if n_usable < 50 * kk:
         raise ValueError(f"only {n_usable} usable sky pixels; need at least {50 * kk}")
     if variance_coefficients is None:
-        a_var, b_var = variance_model_coefficients(data[usable], variance[usable])
+        a_var, b_var, c_var = variance_model_coefficients(data[usable], variance[usable])
     else:
-        a_var, b_var = (float(c) for c in variance_coefficients)
+        a_var, b_var, c_var = (float(c) for c in variance_coefficients)
     if not (b_var > 0 and np.isfinite(a_var)):
-        a_var, b_var = float(np.median(variance[usable])), 0.0
+        a_var, b_var, c_var = float(np.median(variance[usable])), 0.0, 0.0
     a_var = max(a_var, 1e-6)
+
+    def var_model(signal):
+        sig = np.clip(signal, 0.0, None)
+        return a_var + b_var * sig + c_var * sig ** 2
 
     yy = np.broadcast_to(np.arange(ny, dtype=float)[:, None], data.shape)
     yn_all = 2.0 * yy / max(ny - 1, 1) - 1.0
@@ -418,7 +426,7 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
         coef = cho_solve_banded((cb, False), rhs)
         base_u = np.sum(vals * coef[cols], axis=1)
         model_u = base_u * illum_u  # the model of this fit
-        weight_var = a_var + b_var * np.clip(model_u, 0.0, None)
+        weight_var = var_model(model_u)
         z = (d_u - model_u) / np.sqrt(weight_var)
         new_keep = np.abs(z) <= reject_sigma
         # a wavelength interval losing more than 20 % of its points has a model
@@ -454,9 +462,9 @@ def fit_sky(data, variance, mask, wave_map, sky_pixels, *, knot_spacing_px=0.6,
     sky_var = _model_variance(cols_all, vals_all, sband).reshape(ny, nx) * illum_all ** 2
     rejected = np.zeros(data.shape, bool)
     rejected[usable] = ~keep
-    background = a_var + b_var * np.clip(sky, 0.0, None)
+    background = var_model(sky)
     info = {
-        "variance_coefficients": (a_var, b_var),
+        "variance_coefficients": (a_var, b_var, c_var),
         "n_breakpoints": int(bp.size),
         "n_points": n_usable,
         "n_rejected": int((~keep).sum()),

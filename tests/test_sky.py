@@ -100,10 +100,12 @@ def test_sky_model_matches_truth_and_its_error(star_frame, star_sky):
     # ... and the model's own variance describes it (within 30 %)
     ratio = np.mean(err[good] ** 2) / np.mean(model.sky_variance[good])
     assert 0.7 < ratio < 1.3
-    # variance model of the frame: read noise^2 (simulator truth 4.12 e-) and ~1 e2 per e-
-    a, b = model.info["variance_coefficients"]
+    # variance model of the frame: read noise^2 (simulator truth 4.12 e-), ~1 e2 per e-, and no
+    # flat-field term (the helper divides by the true response)
+    a, b, c = model.info["variance_coefficients"]
     assert a == pytest.approx(4.12 ** 2, rel=0.1)
     assert b == pytest.approx(1.0, abs=0.05)
+    assert c < 1e-6
 
 
 def test_sky_under_the_object_is_interpolated(star_frame, star_sky):
@@ -187,9 +189,17 @@ def test_variance_model_coefficients_recover_read_noise(rng):
     signal = rng.uniform(0, 500, 20000)
     data = rng.poisson(signal) + rng.normal(0, 5.0, signal.size)
     var = 25.0 + np.clip(data, 0, None)  # the CCD step's data-based variance
-    a, b = variance_model_coefficients(data, var)
+    a, b, c = variance_model_coefficients(data, var)
     assert a == pytest.approx(25.0, rel=0.02)
     assert b == pytest.approx(1.0, rel=0.01)
+    assert c == pytest.approx(0.0, abs=1e-6)
+    # with the flat-field term the CCD step adds (relative flat variance 1e-5)
+    signal = rng.uniform(0, 30000, 20000)
+    data = rng.poisson(signal) + rng.normal(0, 5.0, signal.size)
+    var_flat = 25.0 + np.clip(data, 0, None) + 1e-5 * data ** 2
+    a, b, c = variance_model_coefficients(data, var_flat)
+    assert b == pytest.approx(1.0, rel=0.01)
+    assert c == pytest.approx(1e-5, rel=0.02)
 
 
 def test_fit_sky_rejects_bad_input():

@@ -159,7 +159,7 @@ def test_adapter_writes_readable_products(tmp_path):
     with fits.open(outs["rectified"]) as hdul:
         names = [h.name for h in hdul]
         assert names[:3] == ["PRIMARY", "UNCERT", "MASK"]
-        assert {"SKY", "SKYVAR", "BKGVAR", "SIGVARF", "SKYREG"} <= set(names)
+        assert {"SKY", "SKYVAR", "BKGVAR", "SIGVARF", "SIGVARQ", "SKYREG"} <= set(names)
         assert hdul[0].header["CTYPE1"] == "AWAV" and hdul[0].header["CUNIT2"] == "arcsec"
     flex = Table.read(outs["flexure_table"], format="ascii.ecsv")
     assert flex.meta["shift_px"] == pytest.approx(header["FLEXPIX"], abs=1e-4)
