@@ -57,8 +57,11 @@ added as a fully correlated term ``(Σ_i w_ij s_ij)²`` (``w`` the extraction
 weights, ``s`` the model's standard deviation) to both extractions.
 
 Masks of the extracted spectra: a column whose masked pixels carry more than
-``max_masked_profile`` of the profile gets the OR of their bits; columns
-without any good pixel get NO_COVERAGE (flux and variance 0).
+``max_masked_profile`` of the profile (or whose SATURATED pixels carry more
+than ``max_saturated_profile``) gets the OR of their bits; columns without
+any good pixel get NO_COVERAGE (flux and variance 0). Below these limits the
+masked pixels are simply left out of the optimal sum (the profile accounts
+for them) and replaced by the profile model in the boxcar sum.
 """
 
 from dataclasses import dataclass, field
@@ -215,7 +218,7 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
             signal_variance_factor=None, signal_variance_quadratic=None, sky=None,
             sky_variance=None, profile_knot_px=0.5,
             profile_wave_order=2, profile_smooth_px=31, reject_sigma=5.0, max_iterations=20,
-            profile_error_fraction=0.02, max_masked_profile=0.5):
+            profile_error_fraction=0.02, max_masked_profile=0.5, max_saturated_profile=0.05):
     """Boxcar and optimal extraction of one object.
 
     Parameters
@@ -258,6 +261,9 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
         Relative accuracy of the profile model, used in the rejection only.
     max_masked_profile : float
         Columns whose masked pixels carry more of the profile are flagged.
+    max_saturated_profile : float
+        Columns whose SATURATED pixels carry more of the profile are flagged
+        (stricter: a saturated core rebuilt from the wings is off by percents).
 
     Returns
     -------
@@ -385,8 +391,12 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
         np.sum(boxw * pos, axis=0), 1e-30)
     bits_opt = np.bitwise_or.reduce(np.where(inap, bad_bits, 0).astype(MASK_DTYPE), axis=0)
     bits_box = np.bitwise_or.reduce(np.where(boxw > 0, bad_bits, 0).astype(MASK_DTYPE), axis=0)
-    opt_mask = np.where(masked_prof > max_masked_profile, bits_opt, 0).astype(MASK_DTYPE)
-    box_mask = np.where(masked_box > max_masked_profile, bits_box, 0).astype(MASK_DTYPE)
+    sat = (mask & MASK_DTYPE(MaskBit.SATURATED)) != 0
+    sat_prof = np.sum(np.where(inap & sat, pos, 0.0), axis=0) / np.maximum(
+        np.sum(np.where(inap, pos, 0.0), axis=0), 1e-30)
+    flag = (masked_prof > max_masked_profile) | (sat_prof > max_saturated_profile)
+    opt_mask = np.where(flag, bits_opt, 0).astype(MASK_DTYPE)
+    box_mask = np.where(flag | (masked_box > max_masked_profile), bits_box, 0).astype(MASK_DTYPE)
     empty = np.sum(use, axis=0) == 0
     for arr in (flux, opt_var, box_flux, box_var):
         arr[empty] = 0.0
@@ -425,7 +435,7 @@ TRACING_DEFAULTS = {"fwhm_guess_arcsec": 1.2, "snr_min": 5.0, "max_objects": 5,
 EXTRACTION_DEFAULTS = {"aperture_fwhm": 1.5, "min_half_width_px": 3.0, "profile_knot_px": 0.5,
                        "profile_wave_order": 2, "profile_smooth_px": 31, "reject_sigma": 5.0,
                        "max_iterations": 20, "profile_error_fraction": 0.02,
-                       "max_masked_profile": 0.5}
+                       "max_masked_profile": 0.5, "max_saturated_profile": 0.05}
 
 
 def _options(given, defaults, section):
@@ -632,7 +642,8 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
             profile_smooth_px=eo["profile_smooth_px"], reject_sigma=eo["reject_sigma"],
             max_iterations=eo["max_iterations"],
             profile_error_fraction=eo["profile_error_fraction"],
-            max_masked_profile=eo["max_masked_profile"]))
+            max_masked_profile=eo["max_masked_profile"],
+            max_saturated_profile=eo["max_saturated_profile"]))
     return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, qfac, sky_region, wave_corr,
                           flex, model.info, traces, half, extractions)
 

@@ -114,9 +114,14 @@ def test_masked_pixels_flag_the_spectrum_only_when_they_matter():
     core = np.round(trace).astype(int)
     mask[core[100] - 3:core[100] + 4, 100] = MaskBit.SATURATED  # whole core: flagged
     mask[core[300] + 3, 300] = MaskBit.COSMIC_RAY  # a wing pixel: estimate still good
+    mask[core[200], 200] = MaskBit.COSMIC_RAY  # the core pixel (~30 % of the profile): fine
+    mask[core[250], 250] = MaskBit.SATURATED  # the same for saturation: flagged (> 5 %)
     ex = extract(d, v, mask, trace, half_width_px=4.5)
     assert ex.mask[100] & MaskBit.SATURATED
-    assert ex.mask[300] == 0
+    assert ex.mask[300] == 0 and ex.mask[200] == 0
+    assert ex.mask[250] & MaskBit.SATURATED
+    in_ap = np.abs(np.arange(NY) - trace[200]) <= 4.5
+    assert ex.flux[200] == pytest.approx(1000.0 * prof[in_ap, 200].sum(), rel=2e-3)
     assert ex.flux[300] == pytest.approx(1000.0 * prof[np.abs(np.arange(NY) - trace[300]) <= 4.5,
                                                           300].sum(), rel=1e-3)
 
