@@ -155,14 +155,29 @@ def theoretical_variance(profile, variance, *, good=None):
 
 
 def _profile_basis(offset, wave_u, half_px, knot_px, wave_order):
+    """Sparse design of P(offset, wave): cubic B-splines in offset x Legendre in wave.
+
+    Columns are interleaved ``j * (wave_order + 1) + k``; each row has 4 x
+    (wave_order + 1) nonzero entries.
+    """
+    from scipy import sparse
+
     lo, hi = -half_px - 0.5, half_px + 0.5
     n_int = max(int(np.ceil((hi - lo) / knot_px)), 1)
     bp = np.linspace(lo, hi, n_int + 1)
     knots = np.concatenate([[lo] * 3, bp, [hi] * 3])
-    b = BSpline.design_matrix(np.clip(offset, lo, hi), knots, 3).toarray()
+    b = BSpline.design_matrix(np.clip(offset, lo, hi), knots, 3)
+    n_pts = offset.size
+    bcols = np.asarray(b.indices).reshape(n_pts, 4)  # scipy stores k + 1 entries per row
+    bvals = np.asarray(b.data).reshape(n_pts, 4)
+    kk = wave_order + 1
     leg = legendre.legvander(wave_u, wave_order)
-    basis = (b[:, :, None] * leg[:, None, :]).reshape(offset.size, -1)
-    return basis, b.shape[1], wave_order + 1
+    cols = (bcols[:, :, None] * kk + np.arange(kk)[None, None, :]).reshape(n_pts, -1)
+    vals = (bvals[:, :, None] * leg[:, None, :]).reshape(n_pts, -1)
+    rows = np.repeat(np.arange(n_pts), cols.shape[1])
+    basis = sparse.csr_matrix((vals.ravel(), (rows, cols.ravel())),
+                              shape=(n_pts, b.shape[1] * kk))
+    return basis, b.shape[1], kk
 
 
 def _penalty(n_spline, n_wave, strength):
@@ -188,12 +203,19 @@ def _fit_profile(data, var, good, inap, offset, wave_u, flux, half_px, knot_px, 
     y = data[sel] / f
     w = np.sqrt(f ** 2 / var[sel])
     basis, n_s, n_w = _profile_basis(offset[sel], wave_u[col[sel]], half_px, knot_px, wave_order)
-    a = basis * w[:, None]
+    a = basis.multiply(w[:, None]).tocsr()
     rhs = y * w
-    scale = np.sqrt(np.mean(np.sum(a ** 2, axis=0)))
+    gram = (a.T @ a).toarray()
+    scale = np.sqrt(np.mean(np.diag(gram)))
     pen = _penalty(n_s, n_w, 1e-3 * scale)
-    coef, *_ = np.linalg.lstsq(np.vstack([a, pen]), np.concatenate([rhs, np.zeros(pen.shape[0])]),
-                               rcond=None)
+    # regularised normal equations (the curvature penalty keeps them positive definite)
+    normal = gram + pen.T @ pen
+    normal[np.diag_indices_from(normal)] += 1e-12 * np.trace(normal) / normal.shape[0]
+    try:
+        coef = np.linalg.solve(normal, a.T @ rhs)
+    except np.linalg.LinAlgError:
+        coef, *_ = np.linalg.lstsq(np.vstack([a.toarray(), pen]),
+                                   np.concatenate([rhs, np.zeros(pen.shape[0])]), rcond=None)
     chi2 = float(np.sum((a @ coef - rhs) ** 2) / max(sel.sum() - coef.size, 1))
     basis_all, _, _ = _profile_basis(offset[inap], wave_u[col[inap]], half_px, knot_px,
                                      wave_order)
