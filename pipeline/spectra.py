@@ -70,12 +70,16 @@ Written by the extraction:
              offset fitted; ``TRCREF`` names the reference frame) or ``fixed``
 ``EXTMETH``  ``optimal`` (HDU 0) ; boxcar in HDU 3
 ``SNRMED``   median S/N per pixel of FLUX over good pixels
+``NREJECT``  pixels rejected in the profile fit
 ``FLEXPIX``  flexure shift applied, pixels along the dispersion (+ = features
-             appear at larger x than in the arc)
+             appear at larger x than in the arc); ``FLEXERR`` its error
+             (-1 = not measured), ``FLEXSTAT`` ``ok``/``no_lines``/``disabled``
 ``FLEXKMS``  the same as a velocity, km/s
 ``SKYSUB``   T
 ``SPECSYS``  ``TOPOCENT``
 ``VARCORR``  variance ratio of long sums along the dispersion (rectify.py)
+``VARRN``    variance model of the frame ``a + b S + c S^2``: ``a`` (e2),
+             ``VARGAIN`` = ``b``, ``VARFLAT`` = ``c`` (pipeline.sky)
 ============ ==========================================================
 
 plus the provenance keywords of :func:`pipeline.provenance.stamp`
