@@ -113,3 +113,12 @@ def test_bad_config_value_stops_the_run_naming_the_key(reduced_night):
     result = _snakemake("-n", "--config", *reduced_night["config"], "out_dirr=elsewhere", check=False)
     assert result.returncode != 0
     assert "unknown key(s) 'out_dirr'" in result.stdout + result.stderr
+
+
+def test_lint_finds_nothing_but_the_missing_conda_environments(reduced_night):
+    # The software environment is the pip-installed package (README), not a conda env per
+    # rule; every other lint Snakemake knows must stay clean.
+    result = _snakemake("--lint", "--config", *reduced_night["config"], check=False)
+    lints = {line.strip() for line in (result.stdout + result.stderr).splitlines()
+             if line.strip().startswith("* ")}
+    assert lints <= {"* Specify a conda environment or container for each rule.:"}, lints

@@ -3,41 +3,13 @@
 # Each rule's params hold exactly the config values its step reads, so changing a flat
 # option reruns the flats and what follows, not the biases.
 
-_CCD_INSTRUMENT_KEYS = ("pixel_extension", "sections", "gain_e_per_adu", "read_noise_e",
-                        "saturation_adu", "dispersion_axis", "wavelength_increases_with_pixel")
-
-
-def ccd_instrument(*, saturation=True):
-    """The part of the instrument description the CCD steps read (biases need no saturation)."""
-    ccd = {key: INSTRUMENT.get(key) for key in _CCD_INSTRUMENT_KEYS}
-    ccd["pixel_extension"] = INSTRUMENT.get("pixel_extension", 0)
-    ccd["binning_keyword"] = INSTRUMENT.get("keywords", {}).get("binning")
-    if not saturation:
-        del ccd["saturation_adu"]
-    return ccd
-
-
-def master_bias_path(readout):
-    return out("calibrations", f"master_bias_{readout}.fits")
-
-
-def master_flat_path(setup):
-    return out("calibrations", f"master_flat_{setup}.fits")
-
-
-def _frame_calibrations(wildcards):
-    rec = NIGHT.record(wildcards.frame)
-    return {"raw": rec.path, "bias": master_bias_path(NIGHT.bias_for(rec.frame_id)),
-            "flat": master_flat_path(rec.setup)}
-
-
 rule night_log:
     input:
         raw_frames=[rec.path for rec in NIGHT.records],
     output:
         night_log=out("night_log.ecsv"),
     params:
-        raw_dir=str(RAW),
+        raw_dir=lambda wildcards: str(RAW),
         instrument=INSTRUMENT,
     log:
         log_path("night_log", "night_log"),

@@ -37,3 +37,189 @@ def out(*parts):
 
 def log_path(rule_name, name):
     return str(OUT / "logs" / rule_name / f"{name}.log")
+
+
+# ---- helpers of the CCD calibration rules (calibration.smk) ----
+
+_CCD_INSTRUMENT_KEYS = ("pixel_extension", "sections", "gain_e_per_adu", "read_noise_e",
+                        "saturation_adu", "dispersion_axis", "wavelength_increases_with_pixel")
+
+
+def ccd_instrument(*, saturation=True):
+    """The part of the instrument description the CCD steps read (biases need no saturation)."""
+    ccd = {key: INSTRUMENT.get(key) for key in _CCD_INSTRUMENT_KEYS}
+    ccd["pixel_extension"] = INSTRUMENT.get("pixel_extension", 0)
+    ccd["binning_keyword"] = INSTRUMENT.get("keywords", {}).get("binning")
+    if not saturation:
+        del ccd["saturation_adu"]
+    return ccd
+
+
+def master_bias_path(readout):
+    return out("calibrations", f"master_bias_{readout}.fits")
+
+
+def master_flat_path(setup):
+    return out("calibrations", f"master_flat_{setup}.fits")
+
+
+def _frame_calibrations(wildcards):
+    rec = NIGHT.record(wildcards.frame)
+    return {"raw": rec.path, "bias": master_bias_path(NIGHT.bias_for(rec.frame_id)),
+            "flat": master_flat_path(rec.setup)}
+
+
+# ---- helpers of the wavelength calibration rules (wavelength.smk) ----
+
+import re as _ws_re
+
+WAVELENGTH_ARCS = sorted({arc.frame_id for setup in NIGHT.setups() for arc in NIGHT.arcs_for(setup)})
+# wildcard values: exactly the night's arcs (a pattern matching nothing when there are none)
+_WS_ARC_PATTERN = "|".join(_ws_re.escape(a) for a in WAVELENGTH_ARCS) or r"(?!x)x"
+_WS_KEYWORDS = INSTRUMENT.get("keywords", {})
+WAVELENGTH_FIGURES = ("lines", "residuals", "residual_map", "dispersion")
+
+
+def wavelength_solution_path(arc):
+    """The 2-D wavelength map of an arc (what rectification reads)."""
+    return out("wavelength", f"{arc}_solution.fits")
+
+
+def wavelength_figures(arc):
+    """The QA figures of an arc's solution."""
+    return [out("qa", f"{arc}_wavelength_{name}.png") for name in WAVELENGTH_FIGURES]
+
+
+# ---- helpers of the extraction rules (extraction.smk) ----
+
+import math as _ex_math
+import re as _ex_re
+
+EXTRACTION_FRAMES = sorted({rec.frame_id for setup in NIGHT.setups()
+                            for rec in NIGHT.frames("standard", setup=setup)
+                            + NIGHT.frames("science", setup=setup)})
+_EX_PATTERN = "|".join(_ex_re.escape(f) for f in EXTRACTION_FRAMES) or r"(?!x)x"
+
+
+def extraction_reference(frame_id):
+    """Trace table of the standard whose shape a science frame's faint objects borrow ([] if none)."""
+    rec = NIGHT.record(frame_id)
+    if rec.frame_type != "science" or not config.get("tracing", {}).get("use_standard_reference",
+                                                                       True):
+        return []
+    standards = NIGHT.standards_for(rec.setup)
+    if not standards:
+        return []
+
+    def gap(std):
+        dt = abs(std.mjd - rec.mjd)
+        return (dt if _ex_math.isfinite(dt) else _ex_math.inf, std.frame_id)
+
+    return out("qa", f"{min(standards, key=gap).frame_id}_traces.ecsv")
+
+
+def extraction_products(frame_id):
+    """Final outputs of the extraction of one standard or science frame."""
+    return [out("rectified", f"{frame_id}.fits"), out("qa", f"{frame_id}_flexure.ecsv"),
+            out("qa", f"{frame_id}_traces.ecsv"), out("spectra", frame_id),
+            out("qa", f"{frame_id}_rectified.png"), out("qa", f"{frame_id}_spectra.png")]
+
+
+# ---- helpers of the flux calibration rules (fluxcal.smk) ----
+
+from pipeline.fluxcal import normalise_object_name as _fc_key
+
+FLUXCAL = config.get("flux_calibration", {})
+_FC_TABLES = {_fc_key(name): path for name, path in FLUXCAL.get("standard_flux_tables", {}).items()}
+_FC_SITE = {key: INSTRUMENT["site"][key] for key in ("latitude_deg", "longitude_deg", "height_m")}
+_FC_EXTINCTION = INSTRUMENT["site"].get("extinction_table") or []
+
+
+def fluxcal_standards(setup):
+    """(frame record, flux-table path) of the setup's usable standards that have a table."""
+    return [(rec, _FC_TABLES[_fc_key(rec.object)]) for rec in NIGHT.standards_for(setup)
+            if _fc_key(rec.object) in _FC_TABLES]
+
+
+def fluxcal_missing_reason(setup):
+    """Why a setup gets no sensitivity ('' when it gets one)."""
+    if fluxcal_standards(setup):
+        return ""
+    standards = NIGHT.standards_for(setup)
+    if not standards:
+        return f"setup {setup} has no usable standard-star frame"
+    names = sorted({rec.object for rec in standards})
+    return (f"no flux table for standard OBJECT {', '.join(repr(n) for n in names)} "
+            "(add it to flux_calibration.standard_flux_tables)")
+
+
+def sensitivity_products(setup):
+    """Sensitivity product, QA table and figure of a setup, plus its calibrated standards."""
+    if not fluxcal_standards(setup):
+        return []
+    files = [out("flux", f"sensitivity_{setup}.fits"), out("flux", f"sensitivity_{setup}_qa.ecsv"),
+             out("qa", f"sensitivity_{setup}.png")]
+    for rec, _ in fluxcal_standards(setup):
+        files += fluxcal_products(rec.frame_id)
+    return files
+
+
+def fluxcal_products(frame_id):
+    """Calibrated spectra directory and QA figure of a science or standard frame."""
+    rec = NIGHT.record(frame_id)
+    if rec.frame_type not in ("science", "standard") or rec.status != "ok":
+        return []
+    return [out("spectra_fluxed", frame_id), out("qa", f"{frame_id}_fluxed.png")]
+
+
+def _fc_own_table(frame_id):
+    """A standard frame's flux table (for the end-to-end check); [] for other frames."""
+    rec = NIGHT.record(frame_id)
+    if rec.frame_type != "standard":
+        return []
+    return _FC_TABLES.get(_fc_key(rec.object), [])
+
+
+def _fc_sensitivity_input(wildcards):
+    setup = NIGHT.record(wildcards.frame).setup
+    return out("flux", f"sensitivity_{setup}.fits") if fluxcal_standards(setup) else []
+
+
+# ---- helpers of the product lists rules (products.smk) ----
+
+def calibration_outputs():
+    files = [out("calibrations", f"master_bias_{readout}.fits") for readout in NIGHT.readouts()]
+    files += [out("calibrations", f"master_flat_{setup}.fits") for setup in NIGHT.setups()]
+    for setup in NIGHT.setups():
+        for rec in NIGHT.arcs_for(setup) + NIGHT.frames("standard", setup=setup) + NIGHT.frames(
+            "science", setup=setup
+        ):
+            files.append(out("calibrated", f"{rec.frame_id}.fits"))
+    return files
+
+
+def wavelength_outputs():
+    files = []
+    for setup in NIGHT.setups():
+        for arc in NIGHT.arcs_for(setup):
+            files += [
+                out("wavelength", f"{arc.frame_id}_lines.ecsv"),
+                out("wavelength", f"{arc.frame_id}_solution.fits"),
+                out("wavelength", f"{arc.frame_id}_qa.ecsv"),
+            ]
+    return files
+
+
+def reduction_products():
+    files = [out("night_log.ecsv")] + calibration_outputs() + wavelength_outputs()
+    for setup in NIGHT.setups():
+        for rec in NIGHT.frames("standard", setup=setup) + NIGHT.frames("science", setup=setup):
+            files += extraction_products(rec.frame_id)
+        for rec in NIGHT.frames("science", setup=setup):
+            files += fluxcal_products(rec.frame_id)
+        files += sensitivity_products(setup)
+    return list(dict.fromkeys(files))
+
+
+def all_products():
+    return reduction_products() + [out("manifest.ecsv"), out("night_report.html")]

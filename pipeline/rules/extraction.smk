@@ -4,39 +4,6 @@
 # night-sky lines, the sky-subtracted frame rectified, the objects traced and extracted.
 # Science frames borrow the trace shape of the setup's standard star (nearest in time) for
 # their faint objects, so their jobs wait for the standard's.
-import math as _ex_math
-import re as _ex_re
-
-EXTRACTION_FRAMES = sorted({rec.frame_id for setup in NIGHT.setups()
-                            for rec in NIGHT.frames("standard", setup=setup)
-                            + NIGHT.frames("science", setup=setup)})
-_EX_PATTERN = "|".join(_ex_re.escape(f) for f in EXTRACTION_FRAMES) or r"(?!x)x"
-
-
-def extraction_reference(frame_id):
-    """Trace table of the standard whose shape a science frame's faint objects borrow ([] if none)."""
-    rec = NIGHT.record(frame_id)
-    if rec.frame_type != "science" or not config.get("tracing", {}).get("use_standard_reference",
-                                                                       True):
-        return []
-    standards = NIGHT.standards_for(rec.setup)
-    if not standards:
-        return []
-
-    def gap(std):
-        dt = abs(std.mjd - rec.mjd)
-        return (dt if _ex_math.isfinite(dt) else _ex_math.inf, std.frame_id)
-
-    return out("qa", f"{min(standards, key=gap).frame_id}_traces.ecsv")
-
-
-def extraction_products(frame_id):
-    """Final outputs of the extraction of one standard or science frame."""
-    return [out("rectified", f"{frame_id}.fits"), out("qa", f"{frame_id}_flexure.ecsv"),
-            out("qa", f"{frame_id}_traces.ecsv"), out("spectra", frame_id),
-            out("qa", f"{frame_id}_rectified.png"), out("qa", f"{frame_id}_spectra.png")]
-
-
 rule extract_spectra:
     input:
         frame=out("calibrated", "{frame}.fits"),

@@ -3,64 +3,6 @@
 # to the standards themselves). A setup without a usable standard keeps its extraction
 # products as its (uncalibrated) spectra; the listing in spectra_fluxed/{frame}/ and the
 # job's log say why. Nothing here fails the night.
-from pipeline.fluxcal import normalise_object_name as _fc_key
-
-FLUXCAL = config.get("flux_calibration", {})
-_FC_TABLES = {_fc_key(name): path for name, path in FLUXCAL.get("standard_flux_tables", {}).items()}
-_FC_SITE = {key: INSTRUMENT["site"][key] for key in ("latitude_deg", "longitude_deg", "height_m")}
-_FC_EXTINCTION = INSTRUMENT["site"].get("extinction_table") or []
-
-
-def fluxcal_standards(setup):
-    """(frame record, flux-table path) of the setup's usable standards that have a table."""
-    return [(rec, _FC_TABLES[_fc_key(rec.object)]) for rec in NIGHT.standards_for(setup)
-            if _fc_key(rec.object) in _FC_TABLES]
-
-
-def fluxcal_missing_reason(setup):
-    """Why a setup gets no sensitivity ('' when it gets one)."""
-    if fluxcal_standards(setup):
-        return ""
-    standards = NIGHT.standards_for(setup)
-    if not standards:
-        return f"setup {setup} has no usable standard-star frame"
-    names = sorted({rec.object for rec in standards})
-    return (f"no flux table for standard OBJECT {', '.join(repr(n) for n in names)} "
-            "(add it to flux_calibration.standard_flux_tables)")
-
-
-def sensitivity_products(setup):
-    """Sensitivity product, QA table and figure of a setup, plus its calibrated standards."""
-    if not fluxcal_standards(setup):
-        return []
-    files = [out("flux", f"sensitivity_{setup}.fits"), out("flux", f"sensitivity_{setup}_qa.ecsv"),
-             out("qa", f"sensitivity_{setup}.png")]
-    for rec, _ in fluxcal_standards(setup):
-        files += fluxcal_products(rec.frame_id)
-    return files
-
-
-def fluxcal_products(frame_id):
-    """Calibrated spectra directory and QA figure of a science or standard frame."""
-    rec = NIGHT.record(frame_id)
-    if rec.frame_type not in ("science", "standard") or rec.status != "ok":
-        return []
-    return [out("spectra_fluxed", frame_id), out("qa", f"{frame_id}_fluxed.png")]
-
-
-def _fc_own_table(frame_id):
-    """A standard frame's flux table (for the end-to-end check); [] for other frames."""
-    rec = NIGHT.record(frame_id)
-    if rec.frame_type != "standard":
-        return []
-    return _FC_TABLES.get(_fc_key(rec.object), [])
-
-
-def _fc_sensitivity_input(wildcards):
-    setup = NIGHT.record(wildcards.frame).setup
-    return out("flux", f"sensitivity_{setup}.fits") if fluxcal_standards(setup) else []
-
-
 rule fit_sensitivity:
     input:
         spectra=lambda wc: [out("spectra", rec.frame_id) for rec, _ in fluxcal_standards(wc.setup)],

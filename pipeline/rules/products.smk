@@ -1,44 +1,4 @@
-# The night's product list, the manifest and the morning report.
-# (calibration_outputs/wavelength_outputs follow the layout in DEVELOPERS.md;
-#  extraction_products, fluxcal_products and sensitivity_products come from their rule files.)
-
-
-def calibration_outputs():
-    files = [out("calibrations", f"master_bias_{readout}.fits") for readout in NIGHT.readouts()]
-    files += [out("calibrations", f"master_flat_{setup}.fits") for setup in NIGHT.setups()]
-    for setup in NIGHT.setups():
-        for rec in NIGHT.arcs_for(setup) + NIGHT.frames("standard", setup=setup) + NIGHT.frames(
-            "science", setup=setup
-        ):
-            files.append(out("calibrated", f"{rec.frame_id}.fits"))
-    return files
-
-
-def wavelength_outputs():
-    files = []
-    for setup in NIGHT.setups():
-        for arc in NIGHT.arcs_for(setup):
-            files += [
-                out("wavelength", f"{arc.frame_id}_lines.ecsv"),
-                out("wavelength", f"{arc.frame_id}_solution.fits"),
-                out("wavelength", f"{arc.frame_id}_qa.ecsv"),
-            ]
-    return files
-
-
-def reduction_products():
-    files = [out("night_log.ecsv")] + calibration_outputs() + wavelength_outputs()
-    for setup in NIGHT.setups():
-        for rec in NIGHT.frames("standard", setup=setup) + NIGHT.frames("science", setup=setup):
-            files += extraction_products(rec.frame_id)
-        for rec in NIGHT.frames("science", setup=setup):
-            files += fluxcal_products(rec.frame_id)
-        files += sensitivity_products(setup)
-    return list(dict.fromkeys(files))
-
-
-def all_products():
-    return reduction_products() + [out("manifest.ecsv"), out("night_report.html")]
+# The manifest and the morning report (the product lists they check are in common.smk).
 
 
 rule manifest:
@@ -48,7 +8,7 @@ rule manifest:
     output:
         manifest=out("manifest.ecsv"),
     params:
-        out_dir=str(OUT),
+        out_dir=lambda wildcards, output: str(Path(output.manifest).parent),
     log:
         log_path("manifest", "manifest"),
     script:
@@ -62,7 +22,7 @@ rule night_report:
     output:
         report=out("night_report.html"),
     params:
-        out_dir=str(OUT),
+        out_dir=lambda wildcards, output: str(Path(output.report).parent),
         title=f"{INSTRUMENT['name']} night report: {RAW}",
     log:
         log_path("night_report", "night_report"),

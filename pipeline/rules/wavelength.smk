@@ -2,25 +2,6 @@
 # arc are found and measured, then identified with the grating model as seed and fitted in
 # 1-D and 2-D. A setup whose identification fails stops that job with a clear message and
 # writes nothing; the other jobs go on (keep-going).
-import re as _ws_re
-
-WAVELENGTH_ARCS = sorted({arc.frame_id for setup in NIGHT.setups() for arc in NIGHT.arcs_for(setup)})
-# wildcard values: exactly the night's arcs (a pattern matching nothing when there are none)
-_WS_ARC_PATTERN = "|".join(_ws_re.escape(a) for a in WAVELENGTH_ARCS) or r"(?!x)x"
-_WS_KEYWORDS = INSTRUMENT.get("keywords", {})
-WAVELENGTH_FIGURES = ("lines", "residuals", "residual_map", "dispersion")
-
-
-def wavelength_solution_path(arc):
-    """The 2-D wavelength map of an arc (what rectification reads)."""
-    return out("wavelength", f"{arc}_solution.fits")
-
-
-def wavelength_figures(arc):
-    """The QA figures of an arc's solution."""
-    return [out("qa", f"{arc}_wavelength_{name}.png") for name in WAVELENGTH_FIGURES]
-
-
 rule find_arc_lines:
     input:
         arc=out("calibrated", "{arc}.fits"),
