@@ -20,6 +20,7 @@ only when their rule runs, to keep the per-job start-up short.
 import importlib
 import logging
 import sys
+import time
 import traceback
 import warnings
 
@@ -64,12 +65,16 @@ def run_rule(rule, inputs, outputs, params, log_path=None):
     warnings.simplefilter("default")
     log = logging.getLogger(f"pipeline.{rule}")
     provenance.set_step_context(rule, params)
+    start = time.perf_counter()
     func = getattr(importlib.import_module(module_name), func_name)
+    imported = time.perf_counter()
     try:
         func(**inputs, **outputs, **params)
     except Exception:
         log.error("rule %s failed:\n%s", rule, traceback.format_exc())
         raise
+    log.info("rule %s done: %.2f s importing %s, %.2f s computing", rule,
+             imported - start, module_name, time.perf_counter() - imported)
 
 
 def run_from_snakemake(smk):
