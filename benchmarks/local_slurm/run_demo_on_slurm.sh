@@ -10,9 +10,13 @@
 # snakemake-executor-plugin-slurm is pip-installed into it when absent.
 # Options:
 #   --size small|full   demo night to simulate (default small; full = 4096x2048, ~80 frames)
+#   --raw DIR           reduce the raw frames in DIR instead of simulating a night
 #   --no-local          skip the local comparison run
 #   --local-cores N     cores of the local run (default 2)
 #   --keep              keep the work folder (default: removed when all went well)
+#   --worktree          run the working tree as it is (default: a clone of its committed
+#                       HEAD in the work folder, so that edits made while the jobs run
+#                       cannot reach them; PYTHONPATH points the jobs at the clone)
 #   -- ARGS...          extra arguments for the SLURM snakemake call
 # Environment: WORK_DIR parent of the work folder (default ${TMPDIR:-/tmp}; on a
 # real cluster it must be on a file system the compute nodes share);
@@ -26,18 +30,22 @@ set -euo pipefail
 REPO=${PIPELINE_REPO:-$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)}
 VENV=/work/venv
 SIZE=small
+RAW_IN=""
 LOCAL=1
 LOCAL_CORES=2
 KEEP=0
+WORKTREE=0
 EXTRA=()
 while [ $# -gt 0 ]; do
     case "$1" in
         --size) SIZE=$2; shift 2 ;;
+        --raw) RAW_IN=$(cd "$2" && pwd); shift 2 ;;
         --no-local) LOCAL=0; shift ;;
         --local-cores) LOCAL_CORES=$2; shift 2 ;;
         --keep) KEEP=1; shift ;;
+        --worktree) WORKTREE=1; shift ;;
         --) shift; EXTRA=("$@"); break ;;
-        -h|--help) sed -n '2,24p' "${BASH_SOURCE[0]}"; exit 0 ;;
+        -h|--help) sed -n '2,28p' "${BASH_SOURCE[0]}"; exit 0 ;;
         -*) echo "unknown option $1 (see --help)" >&2; exit 2 ;;
         *) VENV=$1; shift ;;
     esac
@@ -56,14 +64,29 @@ if ! "$PY" -c 'import snakemake_executor_plugin_slurm' 2>/dev/null; then
     say "installing snakemake-executor-plugin-slurm into $VENV"
     "$PY" -m pip install -q snakemake-executor-plugin-slurm
 fi
+say "load average $(cut -d' ' -f1-3 /proc/loadavg) on $(nproc) cores"
 say "snakemake $("$SMK" --version), slurm plugin $("$PY" -c 'import importlib.metadata as m; print(m.version("snakemake-executor-plugin-slurm"))'), $(sinfo -V)"
 
 WORK=$(mktemp -d "${WORK_DIR:-${TMPDIR:-/tmp}}/slurm_demo.XXXXXX")
 RAW=$WORK/raw
 say "work folder $WORK"
-cd "$REPO"
-"$PY" -m demo_data.simulate --out "$RAW" --size "$SIZE" --quiet
-say "simulated the $SIZE demo night: $(ls "$RAW"/*.fits | wc -l) raw files"
+if [ "$WORKTREE" -eq 1 ]; then
+    RUN_DIR=$REPO
+    say "running the working tree $REPO"
+else
+    RUN_DIR=$WORK/repo
+    git clone -q "$REPO" "$RUN_DIR"
+    export PYTHONPATH="$RUN_DIR${PYTHONPATH:+:$PYTHONPATH}"
+    say "running a clone of $REPO at $(git -C "$RUN_DIR" log -1 --format='%h %s' | cut -c1-70)"
+fi
+cd "$RUN_DIR"
+if [ -n "$RAW_IN" ]; then
+    RAW=$RAW_IN
+    say "reducing $RAW: $(ls "$RAW" | wc -l) files"
+else
+    "$PY" -m demo_data.simulate --out "$RAW" --size "$SIZE" --quiet
+    say "simulated the $SIZE demo night: $(ls "$RAW"/*.fits | wc -l) raw files"
+fi
 
 now() { date +%s.%N; }
 status=0
@@ -73,6 +96,36 @@ status=0
 # accounting database (no sacctmgr accounts, sacct never sees jobs finish).
 SLURM_LOG=$WORK/slurm_run.log
 say "SLURM run: snakemake --profile profiles/slurm --slurm-no-account --slurm-status-command squeue ${EXTRA[*]}"
+# On a one-node cluster this machine is the compute node: sample the peak resident
+# memory (VmHWM) of every process of every SLURM job, to compare with what the rules ask for.
+SAMPLER_PID=""
+if sinfo -h -o '%N' | tr ',' '\n' | grep -qx "$(hostname)"; then
+    "$PY" - "$WORK/job_peak_rss.json" <<'PYEOF' &
+import json, os, signal, sys, time
+peak, out = {}, sys.argv[1]
+def dump(*_):
+    with open(out, "w") as f:
+        json.dump(peak, f)
+    sys.exit(0)
+signal.signal(signal.SIGTERM, dump)
+while True:
+    for pid in os.listdir("/proc"):
+        if not pid.isdigit():
+            continue
+        try:
+            env = open(f"/proc/{pid}/environ", "rb").read().split(b"\0")
+            job = next((e[13:].decode() for e in env if e.startswith(b"SLURM_JOB_ID=")), None)
+            if job is None:
+                continue
+            for line in open(f"/proc/{pid}/status"):
+                if line.startswith("VmHWM:"):
+                    peak[job] = max(peak.get(job, 0), int(line.split()[1]))
+        except OSError:
+            pass
+    time.sleep(0.5)
+PYEOF
+    SAMPLER_PID=$!
+fi
 t0=$(now)
 set +e
 "$SMK" --profile profiles/slurm --slurm-no-account --slurm-status-command squeue \
@@ -81,6 +134,7 @@ rc_slurm=$?
 set -e
 t1=$(now)
 T_SLURM=$(awk -v a="$t0" -v b="$t1" 'BEGIN {printf "%.2f", b - a}')
+if [ -n "$SAMPLER_PID" ]; then kill "$SAMPLER_PID"; wait "$SAMPLER_PID" 2>/dev/null || true; fi
 [ "$rc_slurm" -eq 0 ] || { say "SLURM run exited $rc_slurm (log: $SLURM_LOG)"; tail -n 30 "$SLURM_LOG"; status=1; }
 
 # --- the local run ---------------------------------------------------------
@@ -126,34 +180,36 @@ def manifest(name):
           ", ".join(f"{k} {v}" for k, v in sorted(counts.items())))
     return tab
 
-# Jobs submitted to SLURM, by rule, from the Snakemake log (rule block -> jobid -> SLURM id).
+# Jobs submitted to SLURM, by rule (or group), from the Snakemake log: the SLURM log
+# folder of each submission is .snakemake/slurm_logs/rule_<name>/... or group_<name>_<rules>/...
 log = (work / "slurm_run.log").read_text()
-rule_of, current = {}, None
-for line in log.splitlines():
-    m = re.match(r"\s*(local)?rule (\w+):", line)
-    if m:
-        current = (m.group(2), bool(m.group(1)))
-    m = re.match(r"\s*jobid: (\d+)", line)
-    if m and current:
-        rule_of[m.group(1)] = current
-submitted = re.findall(r"Job (\d+) has been submitted with SLURM jobid (\d+)", log)
-per_rule = Counter(rule_of.get(j, ("?", False))[0] for j, _ in submitted)
-local_rules = sorted({r for r, is_local in rule_of.values() if is_local})
-slurm_ids = {s for _, s in submitted}
+submitted = re.findall(
+    r"Job \S+ has been submitted with SLURM jobid (\d+) \(log: .*?slurm_logs/(rule|group)_([^/]+)/", log)
+per_rule = Counter(name if kind == "rule" else f"group {name}" for _, kind, name in submitted)
+local_rules = sorted(set(re.findall(r"^\s*localrule (\w+):", log, flags=re.M)))
+slurm_ids = {s for s, _, _ in submitted}
 
-# What SLURM itself recorded (jobcomp/filetxt of start_cluster.sh): state and run time.
-states, elapsed = Counter(), 0.0
+# What SLURM itself recorded (jobcomp/filetxt of start_cluster.sh): state and run time
+# (the last record of a job id wins, should the controller's state have been reset).
+states, elapsed, requested_mb = Counter(), 0.0, {}
 comp = Path("/var/log/slurm/jobcomp.log")
 if comp.exists():
     from datetime import datetime
+    records = {}
     for line in comp.read_text().splitlines():
         f = dict(kv.split("=", 1) for kv in line.split() if "=" in kv)
         if f.get("JobId") in slurm_ids:
-            states[f["JobState"]] += 1
-            elapsed += (datetime.fromisoformat(f["EndTime"]) -
-                        datetime.fromisoformat(f["StartTime"])).total_seconds()
+            records[f["JobId"]] = f
+    for f in records.values():
+        m = re.search(r"mem=(\d+)M", f.get("Tres", ""))
+        if m:
+            requested_mb[f["JobId"]] = int(m.group(1))
+        states[f["JobState"]] += 1
+        elapsed += (datetime.fromisoformat(f["EndTime"]) -
+                    datetime.fromisoformat(f["StartTime"])).total_seconds()
 
 print("\n=== SLURM demo-night benchmark ===")
+print(f"  load average at the end (1, 5, 15 min): {' '.join(Path('/proc/loadavg').read_text().split()[:3])}")
 slurm_tab = manifest("out_slurm")
 local_tab = manifest("out_local") if t_local is not None else None
 for name, tab in (("out_slurm", slurm_tab), ("out_local", local_tab)):
@@ -179,6 +235,20 @@ if states:
           f"); summed job run time {elapsed:.0f} s")
     if set(states) - {"COMPLETED"}:
         bad = True
+peak_file = work / "job_peak_rss.json"
+if peak_file.exists():
+    import json
+    peak_kb = json.loads(peak_file.read_text())
+    rule_of = {s: (name if kind == "rule" else f"group {name}") for s, kind, name in submitted}
+    by_rule = {}
+    for job, kb in peak_kb.items():
+        if job in rule_of:
+            r = by_rule.setdefault(rule_of[job], [0, 0])
+            r[0] = max(r[0], kb / 1024)
+            r[1] = max(r[1], requested_mb.get(job, 0))
+    print("peak resident memory of one process per SLURM job (sampled every 0.5 s), by rule:")
+    for name, (mb, req) in sorted(by_rule.items(), key=lambda kv: -kv[1][0]):
+        print(f"  {name:40s} {mb:7.0f} MB of {req or '?'} MB asked")
 if t_local is not None:
     maxrss = Path(work / "local_run.log.maxrss")
     rss = f", largest job peak RSS {int(maxrss.read_text()) / 1024:.0f} MB" if maxrss.exists() else ""
@@ -193,6 +263,6 @@ set -e
 if [ "$status" -eq 0 ] && [ "$KEEP" -eq 0 ]; then
     rm -rf "$WORK"
 else
-    say "work folder kept: $WORK (logs: slurm_run.log, local_run.log; job logs in .snakemake/slurm_logs)"
+    say "work folder kept: $WORK (logs: slurm_run.log, local_run.log; SLURM job logs of failed jobs in $RUN_DIR/.snakemake/slurm_logs)"
 fi
 exit "$status"
