@@ -635,10 +635,14 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
     sky_err_r = rct.resample_rows(np.sqrt(model.sky_variance), wts)  # fully correlated locally
     bkg_r = rct.resample_rows(model.background_variance, wts, power=2)
     wsum = wts.weight_sum
-    _, b_coef, c_coef = model.info["variance_coefficients"]
+    _, b_coef, _ = model.info["variance_coefficients"]
     safe = np.where(wsum > 0, wsum, 1.0)
     gfac = b_coef * np.where(wsum > 0, wts.weight_sq_sum / safe, 0.0)
-    qfac = c_coef * np.where(wsum > 0, wts.weight_sq_sum / safe ** 2, 0.0)
+    # flat-field term per column (the flat's relative error changes along the dispersion);
+    # the rectified pixel's term is the weighted mean of c over its input pixels
+    c_col = sky_mod.flat_term_by_column(data, variance, mask, var_coef)
+    c_r = rct.resample_rows(np.broadcast_to(c_col[None, :], data.shape), wts) / safe
+    qfac = c_r * np.where(wsum > 0, wts.weight_sq_sum / safe ** 2, 0.0)
     sky_region = rct.resample_rows(sky_pixels.astype(float), wts) > 0.5 * wsum
     for arr in (sky_r, sky_err_r, bkg_r, gfac, qfac):
         arr[~wts.covered] = 0.0

@@ -43,6 +43,7 @@ from scipy.optimize import curve_fit
 from scipy.signal import find_peaks
 
 from .errors import ExtractionError, PipelineWarning
+from .maskbits import MaskBit
 
 __all__ = ["Detection", "Trace", "spatial_profile", "find_objects", "crude_sky",
            "object_mask", "trace_object", "offset_trace", "fixed_trace", "trace_frame",
@@ -444,6 +445,8 @@ def trace_object(data, variance, mask, wave_angstrom, y_guess_px, *, fwhm_guess_
     sigma0 = fwhm_guess_px / _FWHM_PER_SIGMA
     half = max(int(np.ceil(window_fwhm * fwhm_guess_px)), 3)
     bw, bc, be, bs = [], [], [], []
+    bsat = []  # bins whose window holds SATURATED pixels: their cores are flattened
+    saturated = (np.asarray(mask).astype(np.int64) & int(MaskBit.SATURATED)) != 0
     guess = float(y_guess_px)
     for b0, b1 in zip(bounds[:-1], bounds[1:]):
         if b1 - b0 < 3:
@@ -469,6 +472,7 @@ def trace_object(data, variance, mask, wave_angstrom, y_guess_px, *, fwhm_guess_
         bc.append(popt[1])
         be.append(max(perr[1], 1e-3))
         bs.append(popt[2] * _FWHM_PER_SIGMA)
+        bsat.append(bool(saturated[lo:hi, b0:b1].any()))
     if len(bc) < order + 3:
         return None
     bw, bc, be = np.array(bw), np.array(bc), np.array(be)
@@ -483,7 +487,12 @@ def trace_object(data, variance, mask, wave_angstrom, y_guess_px, *, fwhm_guess_
     info = {"rms_px": float(np.std(resid[~rejected])) if (~rejected).sum() > 1 else 0.0,
             "n_bins_used": int((~rejected).sum()), "bin_wave_angstrom": bw,
             "bin_centre_px": bc, "bin_err_px": be, "bin_used": ~rejected}
-    return Trace(coef_full, domain, float(np.median(bs)), 0.0, "own", "", info)
+    # the width from bins without saturated pixels (the median of a row whose
+    # brightest pixels are masked is biased low, widening the profile)
+    bs, bsat = np.asarray(bs), np.asarray(bsat, bool)
+    fwhm = float(np.median(bs[~bsat])) if (~bsat).sum() >= 3 else float(np.median(bs))
+    info["n_bins_saturated"] = int(bsat.sum())
+    return Trace(coef_full, domain, fwhm, 0.0, "own", "", info)
 
 
 def _straighten(data, good, shape_px):

@@ -212,3 +212,36 @@ def test_simulated_star_variance_near_theoretical_minimum(star_reductions):
         # the sky model's correlated error comes on top (reported separately)
         assert abs(ratio - 1.0) < 0.05
         assert ex.info["variance_sky_term"] < 0.05
+
+
+def test_flat_term_per_column_keeps_bright_star_errors_honest(rng):
+    # analytic truth: the flat's relative variance falls 4x along x (a faint blue lamp),
+    # the CCD step's variance rn^2 + data + c(x) data^2 carries it pixel by pixel
+    from pipeline.sky import flat_term_by_column, variance_model_coefficients
+
+    x = np.arange(NX)
+    trace, prof = _profile(x)
+    c_true = 4e-5 * (1 - 0.75 * x / NX)
+    flux = 3e5 * np.ones(NX)
+    sky, rn = 50.0, 4.0
+    inap = np.abs(np.arange(NY)[:, None] - trace) <= 4.5
+    truth = flux * np.where(inap, prof, 0).sum(axis=0)
+    chi2 = []
+    for _ in range(6):
+        img = flux * prof + sky
+        d = rng.poisson(img) * (1 + rng.normal(0, 1, img.shape) * np.sqrt(c_true)[None, :])
+        d = d + rng.normal(0, rn, d.shape) - sky
+        v = rn ** 2 + np.clip(d + sky, 0, None) + c_true * (d + sky) ** 2
+        coef = variance_model_coefficients(d + sky, v)
+        c_col = flat_term_by_column(d + sky, v, np.zeros(d.shape, np.uint8), coef)
+        assert np.allclose(c_col[20:-20], c_true[20:-20], rtol=0.15)
+        ex = extract(d, v, np.zeros(d.shape, np.uint8), trace, half_width_px=4.5,
+                     background_variance=np.full(d.shape, rn ** 2 + sky),
+                     signal_variance_factor=1.0,
+                     signal_variance_quadratic=np.broadcast_to(c_col, d.shape),
+                     sky=np.full(d.shape, sky))
+        chi2.append((ex.flux - truth) ** 2 / ex.variance)
+    chi2 = np.array(chi2)
+    # honest on both ends (one global c would be ~2x off at x = 0 and ~0.6 at the end)
+    assert 0.8 < chi2[:, :NX // 4].mean() < 1.2
+    assert 0.8 < chi2[:, -NX // 4:].mean() < 1.2

@@ -146,3 +146,25 @@ def test_trace_table_round_trip():
     for a, b in zip(traces, back):
         np.testing.assert_allclose(a.position_px(wave), b.position_px(wave))
         assert a.mode == b.mode and a.fwhm_px == b.fwhm_px
+
+
+def test_saturated_cores_do_not_widen_the_fwhm(rng):
+    # analytic truth: pixel-integrated Gaussian, sigma 1.2 rows; a Gaussian fitted to it
+    # has sigma^2 = 1.2^2 + 1/12 (pixel width), FWHM = 2.3548 * 1.234 = 2.906 rows
+    from scipy.special import ndtr
+    from pipeline.maskbits import MaskBit
+    from pipeline.trace import trace_object
+
+    ny, nx = 40, 480
+    rows = np.arange(ny)[:, None]
+    prof = ndtr((rows + 0.5 - 20.0) / 1.2) - ndtr((rows - 0.5 - 20.0) / 1.2)
+    flux = 2.0e5 * (1 + 0.5 * np.sin(np.arange(nx) / 9.0))  # saturates in some columns only
+    img = flux[None, :] * prof + 100.0
+    data = rng.normal(img, np.sqrt(img + 16.0))
+    var = 16.0 + np.clip(data, 0, None)
+    mask = np.where(data > 8.0e4, MaskBit.SATURATED, 0).astype(np.uint8)
+    assert 0.1 < np.mean(mask[20] > 0) < 0.9  # partly saturated bins exist
+    tr = trace_object(data - 100.0, var, mask, np.linspace(5000, 6000, nx), 20.0,
+                      fwhm_guess_px=3.0)
+    assert tr.fwhm_px == pytest.approx(2.3548 * np.sqrt(1.2 ** 2 + 1 / 12), rel=0.01)
+    assert tr.info["n_bins_saturated"] > 0
