@@ -122,3 +122,25 @@ def test_lint_finds_nothing_but_the_missing_conda_environments(reduced_night):
     lints = {line.strip() for line in (result.stdout + result.stderr).splitlines()
              if line.strip().startswith("* ")}
     assert lints <= {"* Specify a conda environment or container for each rule.:"}, lints
+
+
+@pytest.mark.parametrize("section, option, reruns, untouched", [
+    # a sky option: only extraction and what follows it
+    ("sky", "spatial_order: 1", {"extract_spectra", "flux_calibrate"},
+     {"master_bias", "master_flat", "calibrate_frame", "solve_wavelength"}),
+    # a flat option: the flats and everything calibrated with them, never the bias
+    ("flat", "keep_slit_illumination: false", {"master_flat", "calibrate_frame"},
+     {"master_bias", "night_log"}),
+])
+def test_changing_one_option_reruns_only_what_it_affects(reduced_night, tmp_path, section, option,
+                                                         reruns, untouched):
+    import yaml
+
+    config = yaml.safe_load((REPO_ROOT / "config" / "config.yaml").read_text())
+    changed = {section: dict(config[section], **yaml.safe_load(option))}
+    override = tmp_path / "override.yaml"
+    override.write_text(yaml.safe_dump(changed))
+    dry = _snakemake("-n", "--configfile", str(override), "--config", *reduced_night["config"])
+    planned = _planned_rules(dry.stdout)
+    assert reruns <= planned, planned
+    assert not (untouched & planned), planned
