@@ -33,8 +33,8 @@ in micrometres.
 References
 ----------
 Greisen, E. W., Calabretta, M. R., Valdes, F. G., & Allen, S. L. 2006, A&A
-446, 747 (spectral coordinates in FITS; the grating algorithm ``-GRI`` written
-by :func:`grating_wcs_cards`).
+446, 747 (spectral coordinates in FITS; the grating algorithm in air, ``-GRA``,
+written by :func:`grating_wcs_cards`).
 """
 
 import argparse
@@ -621,15 +621,14 @@ def format_summary(summary):
 
 
 def grating_wcs_cards(model, *, axis=1, reference_px=None):
-    """FITS WCS cards (Greisen et al. 2006, ``AWAV-GRI``) of the model along the dispersion.
+    """FITS WCS cards (Greisen et al. 2006, ``AWAV-GRA``) of the model along the dispersion.
 
     The reference pixel is the camera axis (``PV_6 = 0``), where the grating
-    algorithm and this model coincide in form. WCSLIB (and so astropy.wcs)
-    applies the grating equation to vacuum wavelengths and converts to air
-    afterwards; because ``n_air`` varies across the detector, its air
-    wavelengths differ from the air-wavelength grating equation used here by a
-    few mA over the detector (e.g. <= 0.005 A for the demo setups; see
-    tests/test_grating.py).
+    algorithm and this model coincide in form. The algorithm code ``GRA`` is
+    the grating equation applied to air wavelengths, as this model does
+    (``GRI`` would apply it in vacuum; WCSLIB's ``spc.h`` documents both), so
+    astropy.wcs reproduces :meth:`GratingModel.wavelength` to rounding error
+    (tests/test_grating.py).
 
     Parameters
     ----------
@@ -648,7 +647,7 @@ def grating_wcs_cards(model, *, axis=1, reference_px=None):
     theta = math.degrees(math.radians(model.beta_center_deg) - beta_r)
     i = int(axis)
     return [
-        (f"CTYPE{i}", "AWAV-GRI", "air wavelength, grating (Greisen et al. 2006)"),
+        (f"CTYPE{i}", "AWAV-GRA", "air wavelength, grating in air (Greisen+ 2006)"),
         (f"CUNIT{i}", "Angstrom", "unit of CRVAL and CDELT"),
         (f"CRPIX{i}", xr + 1.0, "reference pixel (1-based)"),
         (f"CRVAL{i}", float(model.wavelength(xr)), "[Angstrom] wavelength at CRPIX"),

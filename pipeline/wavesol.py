@@ -28,7 +28,7 @@ is written then.
 The product (``solve_wavelength_file``) is a FITS file whose PRIMARY HDU is the
 dense map ``lambda(y, x)`` (float64, Angstrom, air) on the calibrated frame's
 pixels. Its header holds the fitted physical model as FITS WCS (Greisen et al.
-2006, ``AWAV-GRI``, for the reference row) with the Chebyshev correction and
+2006, ``AWAV-GRA``, for the reference row) with the Chebyshev correction and
 the line-tilt polynomial beside it (keywords listed in :data:`HEADER_KEYWORDS`);
 extension ``LINES`` lists the identified lines and ``TRACE`` the traced points.
 
@@ -1201,7 +1201,7 @@ def solution_header(solution, *, arc_header=None, setup="", arc_name=""):
     Returns
     -------
     astropy.io.fits.Header
-        Axis 1 is the dispersion: ``CTYPE1 = 'AWAV-GRI'`` evaluates the fitted
+        Axis 1 is the dispersion: ``CTYPE1 = 'AWAV-GRA'`` evaluates the fitted
         grating model on row ``WSYREF`` (the Chebyshev correction ``WCCn`` is to be
         added, see :data:`HEADER_KEYWORDS`); axis 2 is the slit pixel (linear).
     """
@@ -1254,7 +1254,7 @@ def solution_header(solution, *, arc_header=None, setup="", arc_name=""):
     h["WS2DNPT"] = (solution.info["n_points"], HEADER_KEYWORDS["WS2DNPT"])
     h["WS2DNLN"] = (solution.info["n_lines"], HEADER_KEYWORDS["WS2DNLN"])
     h.add_comment("lambda(x, y) = lambda_grating(x + Q) + sum_n WCCn T_n(u), u = (2 (x + Q) - "
-                  "WCDOM0 - WCDOM1) / (WCDOM1 - WCDOM0); lambda_grating is the AWAV-GRI axis")
+                  "WCDOM0 - WCDOM1) / (WCDOM1 - WCDOM0); lambda_grating is the AWAV-GRA axis")
     h.add_comment("Q(x, y) = sum WQij ((x - WQXREF) / WQXSCL)^i ((y - WSYREF) / WQYSCL)^j, j >= 1")
     return h
 
