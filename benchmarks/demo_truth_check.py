@@ -38,7 +38,7 @@ no pipeline function computes any of the figures. Conventions (demo_data/README.
   the fluxed/true ratio inside each band is shown on its own.
 
 Every figure is printed with its target and PASS / SHORT; targets marked ``*`` are
-chosen by this script (the brief gave none), ``info`` rows have no target.
+chosen by this script (the issues set none), ``info`` rows have no target.
 """
 
 import argparse
@@ -59,12 +59,12 @@ from astropy.table import Table
 REPO = Path(__file__).resolve().parents[1]
 C_KM_S = 299792.458
 
-# targets (brief) and the ones chosen here (marked * in the table)
-WAVE_RMS_TARGET_PX = 0.05           # brief
+# targets set by the issues and the ones chosen here (marked * in the table)
+WAVE_RMS_TARGET_PX = 0.05           # issue target
 FLEX_TARGET_PX = 0.05               # * same as the wavelength target
-SKY_RATIO_TARGET = 1.1              # brief
-EXTRACT_BIAS_TARGET_PCT = 0.5       # brief
-CHI2_RANGE = (0.9, 1.1)             # brief
+SKY_RATIO_TARGET = 1.1              # issue target
+EXTRACT_BIAS_TARGET_PCT = 0.5       # issue target
+CHI2_RANGE = (0.9, 1.1)             # issue target
 FLUX_MEDIAN_TARGET_PCT = 2.0        # * common practice for spectrophotometry
 FLUX_SCATTER_TARGET_PCT = 2.0       # *
 REDSHIFT_TARGET_KMS = 10.0          # * ~ 0.07 px at 5300 A (wavelength + flexure targets)

@@ -5,8 +5,8 @@ Truth used here:
   box, convolved with a Gaussian and integrated over pixels; Poisson and read noise);
 * the demo simulator (demo_data, independent optics code) for realistic arcs;
 * the Cramer-Rao bound sigma_x^2 >= 1/I, I = sum_i (d mu_i / d x0)^2 / var_i
-  (library-notes.md, "Numbers worth testing against": N = 1e4, sigma = 1.5 px, B = 0
-  gives 0.0153 px).
+  (analytic: without background sigma_x ~ sqrt((sigma^2 + 1/12) / N), so N = 1e4,
+  sigma = 1.5 px, B = 0 gives 0.0153 px).
 """
 
 import math
@@ -71,7 +71,7 @@ def test_centroids_recover_injected_lines_with_honest_errors(rng):
 
 
 def test_gaussian_line_reaches_the_cramer_rao_bound(rng):
-    # library-notes.md: N = 1e4 e-, sigma = 1.5 px, B = 0 -> bound 0.0153 px (without read
+    # analytic: sqrt((sigma^2 + 1/12) / N) = 0.0153 px for N = 1e4 e-, sigma = 1.5 px (without read
     # noise); with RN = 4 e- the bound is recomputed below from the Fisher information
     n, sigma, nlines = 1e4, 1.5, 300
     centres = 20 + 40 * np.arange(nlines) + rng.uniform(-0.5, 0.5, nlines)
@@ -84,7 +84,7 @@ def test_gaussian_line_reaches_the_cramer_rao_bound(rng):
            - slit_profile(x, 0.3 - h, width_px=0, sigma_px=sigma, flux=n)) / (2 * h)
     bound = 1 / math.sqrt(np.sum(dmu ** 2 / (mu + RN ** 2)))
     no_rn = 1 / math.sqrt(np.sum(dmu ** 2 / mu))
-    assert no_rn == pytest.approx(0.0153, abs=0.0003)  # the library-notes figure
+    assert no_rn == pytest.approx(math.sqrt((sigma ** 2 + 1 / 12) / n), abs=0.0003)  # 0.0153 px
     lines = find_arc_lines(data, var, detection_snr=10)
     _, d = _match(lines.x_px, centres)
     assert len(lines) == nlines
@@ -93,7 +93,7 @@ def test_gaussian_line_reaches_the_cramer_rao_bound(rng):
 
 
 def test_simulated_isolated_lines_within_1p5_of_the_photon_noise_bound():
-    sim = pytest.importorskip("demo_data.simulate")
+    import demo_data.simulate as sim
     inst = sim.make_instrument()
     kw = dict(lamps="HgAr,Ne", poisson=False, read_noise=False, cosmic_rays=False)
     arc = sim.make_arc(inst, 8.93, **kw)

@@ -26,7 +26,7 @@ from pipeline.frames import read_frame
 from pipeline.headers import parse_section
 from pipeline.maskbits import MaskBit
 
-sim = pytest.importorskip("demo_data.simulate")
+import demo_data.simulate as sim
 from demo_data.detector import canonical_to_raw  # noqa: E402  (simulator layout helper)
 
 REPO = Path(__file__).resolve().parents[1]
@@ -569,3 +569,69 @@ def test_module_defaults_match_the_schema():
                                      ("bias", ccd.BIAS_DEFAULTS), ("flat", ccd.FLAT_DEFAULTS),
                                      ("calibration", ccd.CALIBRATION_DEFAULTS)):
         assert defaults(schema[section]) == module_defaults, section
+
+
+def _tiny_night(tmp_path, rng, extra_header):
+    """Biases, flats and one science frame of a 24 x 64 detector (dispersion along FITS axis 1,
+    4 overscan columns), every raw header carrying ``extra_header``; returns the masters made
+    from them and the raw science path. Truth: the headers written here."""
+    ny, nx, nov = 24, 64, 4
+    instrument = {"pixel_extension": 0,
+                  "sections": {"data": {"keyword": None, "value": f"[1:{nx},1:{ny}]"},
+                               "overscan": {"keyword": None,
+                                            "value": f"[{nx + 1}:{nx + nov},1:{ny}]"}},
+                  "gain_e_per_adu": {"keyword": None, "value": 2.0},
+                  "read_noise_e": {"keyword": None, "value": 5.0},
+                  "saturation_adu": 60000.0, "dispersion_axis": 1,
+                  "wavelength_increases_with_pixel": True, "binning_keyword": "CCDSUM"}
+
+    def raw_frame(electrons, kind, path):
+        adu = np.empty((ny, nx + nov))
+        adu[:, nx:] = 500.0 + rng.normal(0, 2.5, (ny, nov))
+        adu[:, :nx] = 500.0 + (rng.poisson(electrons) + rng.normal(0, 5.0, (ny, nx))) / 2.0
+        hdu = fits.PrimaryHDU(np.clip(np.round(adu), 0, 65535).astype(np.uint16))
+        hdu.header["IMAGETYP"] = kind
+        for key, value in extra_header.items():
+            hdu.header[key] = value
+        hdu.writeto(path)
+        return str(path)
+
+    biases = [raw_frame(np.zeros((ny, nx)), "BIAS", tmp_path / f"b{i}.fits") for i in range(3)]
+    flats = [raw_frame(np.full((ny, nx), 20000.0), "FLAT", tmp_path / f"f{i}.fits")
+             for i in range(3)]
+    sci = raw_frame(np.full((ny, nx), 300.0), "SCIENCE", tmp_path / "sci.fits")
+    out = tmp_path / "out"
+    ccd.make_master_bias_file(frames=biases, master=str(out / "b.fits"), qa=str(out / "b.ecsv"),
+                              instrument=instrument)
+    ccd.make_master_flat_file(frames=flats, bias=str(out / "b.fits"), master=str(out / "f.fits"),
+                              qa=str(out / "f.ecsv"), instrument=instrument)
+    return instrument, str(out / "b.fits"), str(out / "f.fits"), sci
+
+
+def test_calibrated_frames_carry_the_standard_keywords(tmp_path, rng):
+    """An instrument whose headers use other names (ITIME, OBJNAME, ...): the calibrated frame
+    has the standard OBJECT, EXPTIME, ... with the configured keywords' values, and keeps the
+    originals. Truth: the header values written here."""
+    raw = {"OBJNAME": "Tarn Field 3", "ITIME": 600.0, "UTSTART": "2026-03-14T01:00:00",
+           "SECZ": 1.31, "TELRA": 150.25, "TELDEC": -20.5, "DISPERSR": "G300",
+           "GRANGLE": 7.5, "APERWID": 1.5, "FILTNAME": "GG395", "ARCLAMP": "Ne",
+           "OBJECT": "pointing 17"}     # a raw OBJECT of another meaning is overridden
+    keywords = {"object": "OBJNAME", "exposure_time_s": "ITIME", "date_obs": "UTSTART",
+                "airmass": "SECZ", "ra_deg": "TELRA", "dec_deg": "TELDEC",
+                "grating": "DISPERSR", "grating_tilt_deg": "GRANGLE",
+                "slit_width_arcsec": "APERWID", "filter": "FILTNAME", "lamps": "ARCLAMP",
+                "binning": "CCDSUM"}
+    instrument, bias, flat, sci = _tiny_night(tmp_path, rng, raw)
+    ccd.calibrate_frame_file(raw=sci, bias=bias, flat=flat, calibrated=str(tmp_path / "c.fits"),
+                             frame_type="science", instrument=instrument, keywords=keywords,
+                             calibration={"use_measured_gain": False,
+                                          "cosmic_rays": {"enabled": False}})
+    h = read_frame(tmp_path / "c.fits").header
+    standard = {"OBJECT": "OBJNAME", "EXPTIME": "ITIME", "DATE-OBS": "UTSTART",
+                "AIRMASS": "SECZ", "RA": "TELRA", "DEC": "TELDEC", "GRATING": "DISPERSR",
+                "GRTILT": "GRANGLE", "SLITWID": "APERWID", "FILTER": "FILTNAME",
+                "LAMPS": "ARCLAMP"}
+    for std, source in standard.items():
+        assert h[std] == raw[source], std
+        assert h[source] == raw[source], source       # the original is kept
+    assert h["OBJECT"] == "Tarn Field 3" and h["EXPTIME"] == 600.0

@@ -69,7 +69,7 @@ def test_optimal_extraction_is_unbiased_honest_and_efficient(rng, flux0):
 
 def test_boxcar_to_optimal_variance_ratio_matches_gaussian_theory():
     # background-limited Gaussian, sigma = 2 rows, aperture +-3 sigma: analytic ratio
-    # var_box / var_opt = N_pix * sum(P^2) (common practice; the library notes quote 1.65)
+    # var_box / var_opt = N_pix * sum(P^2) (analytic for a Gaussian profile: 1.65 for a +-3 sigma box when background-limited)
     x = np.arange(200)
     rows = np.arange(41)[:, None]
     trace = np.full(x.size, 20.0)

@@ -32,14 +32,15 @@ import demo_data.simulate as sim
 from demo_data import sources as src
 
 REPO = Path(__file__).resolve().parents[1]
-REF = REPO.parent / "shared" / "reference"
+# published tables shipped with the tests (copies of the project's shared reference folder)
+REF = REPO / "tests" / "reference"
 PNG_DIR = Path("/tmp/test_simulator_png")
 
 
 def _ref_rows(name):
     path = REF / name
     if not path.exists():
-        pytest.skip(f"shared reference table {path} not found (expected at repo-root/../shared/reference)")
+        raise FileNotFoundError(f"reference table {path} missing; it ships in tests/reference")
     with open(path, newline="") as fh:
         return list(csv.DictReader(line for line in fh if not line.startswith("#")))
 

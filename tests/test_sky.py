@@ -20,7 +20,7 @@ from pipeline.maskbits import MaskBit
 from pipeline.sky import fit_sky, subtract_sky, variance_model_coefficients
 from pipeline.trace import object_mask
 
-sim = pytest.importorskip("demo_data.simulate")
+import demo_data.simulate as sim
 
 
 def simulated_frame(target="TRV-9", *, exptime_s=900.0, flexure_x_px=0.3, seed=11,

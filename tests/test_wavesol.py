@@ -29,7 +29,7 @@ from pipeline.errors import InputFileError, OrderOverlapWarning, WavelengthSolut
 from pipeline.frames import Frame, write_frame
 from pipeline.linelists import LineList, read_line_list, species_for_lamps
 
-sim = pytest.importorskip("demo_data.simulate")
+import demo_data.simulate as sim
 
 # config/config.yaml instrument.grating and instrument.lamps (the observer's nominal values)
 GRATING = {"groove_density_per_mm": 600, "order": 1, "camera_collimator_angle_deg": 30.0,
