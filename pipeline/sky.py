@@ -31,7 +31,8 @@ Choices
   The first iteration uses the pixel variances.
 * The sky is multiplied by a slit-illumination function ``I(y)`` (a
   smoothing spline along the slit whose smoothness is set by generalised
-  cross-validation) fitted alternately with the wavelength model from the sky
+  cross-validation, Craven & Wahba 1979, Numer. Math. 31, 377, as implemented by
+  ``scipy.interpolate.make_smoothing_spline``) fitted alternately with the wavelength model from the sky
   rows: vignetting and slit-width irregularities that the flat field leaves
   in the frame. Under an object it is bridged by a straight line fitted to
   the 20 rows on each side, so structure finer than the object's mask cannot
