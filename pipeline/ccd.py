@@ -1521,6 +1521,45 @@ def _frame_header(raw_header, layout, frame_type, instrument):
     return header
 
 
+#: Standard keyword written into every calibrated frame -> key of ``instrument.keywords``
+#: naming the raw keyword it is copied from. Steps after ``calibrate_frame`` read only
+#: these standard names (DEVELOPERS.md, Conventions).
+STANDARD_KEYWORDS = {"OBJECT": "object", "EXPTIME": "exposure_time_s", "DATE-OBS": "date_obs",
+                     "AIRMASS": "airmass", "RA": "ra_deg", "DEC": "dec_deg",
+                     "GRATING": "grating", "GRTILT": "grating_tilt_deg",
+                     "SLITWID": "slit_width_arcsec", "FILTER": "filter", "LAMPS": "lamps"}
+
+
+def standard_keyword_cards(raw_header, keywords):
+    """Cards of the standard keywords, copied from the configured raw keywords.
+
+    Parameters
+    ----------
+    raw_header : astropy.io.fits.Header
+        Raw header (primary + pixel extension).
+    keywords : dict or None
+        ``instrument.keywords``: quantity -> raw keyword name; a quantity not
+        configured is read from its standard name.
+
+    Returns
+    -------
+    list of (keyword, value, comment)
+        One card per standard keyword whose configured raw keyword is present
+        (the raw card itself is kept too, under its own name).
+    """
+    keywords = keywords or {}
+    cards = []
+    for standard, quantity in STANDARD_KEYWORDS.items():
+        source = keywords.get(quantity) or standard
+        if source not in raw_header:
+            continue
+        comment = raw_header.comments[source]
+        if source != standard:
+            comment = f"from {source}" + (f": {comment}" if comment else "")
+        cards.append((standard, raw_header[source], comment[:46]))
+    return cards
+
+
 def known_defects_mask(sections, layout):
     """Canonical bool mask of known detector defects.
 
@@ -1824,7 +1863,7 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
 
 
 def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument, overscan=None,
-                         calibration=None):
+                         calibration=None, keywords=None):
     """CCD-calibrate one arc, standard or science frame (rule ``calibrate_frame``).
 
     Parameters
@@ -1841,6 +1880,11 @@ def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument,
         CCD part of the instrument config.
     overscan, calibration : dict
         The ``overscan`` and ``calibration`` config sections.
+    keywords : dict, optional
+        ``instrument.keywords``. The values of the configured raw keywords are
+        written under the standard names of :data:`STANDARD_KEYWORDS`
+        (OBJECT, EXPTIME, DATE-OBS, AIRMASS, RA, DEC, GRATING, GRTILT, SLITWID,
+        FILTER, LAMPS), which are the only names later steps read.
 
     Notes
     -----
@@ -1896,6 +1940,8 @@ def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument,
     except ValueError as exc:
         raise InputFileError(raw, str(exc)) from None
     out_header = _frame_header(header, layout, frame_type, instrument)
+    for card in standard_keyword_cards(header, keywords):
+        out_header[card[0]] = card[1:]
     out_header["GAIN"] = (gain, "e-/ADU gain used to convert to electrons")
     out_header["GAINSRC"] = (gain_src, "where GAIN came from")
     out_header["RDNOISE"] = (rn, "e- read noise used in the variance")

@@ -64,6 +64,7 @@ rule calibrate_frame:
     params:
         frame_type=lambda wc: NIGHT.record(wc.frame).frame_type,
         instrument=ccd_instrument(),
+        keywords=INSTRUMENT.get("keywords", {}),
         overscan=config.get("overscan", {}),
         calibration=config.get("calibration", {}),
     log:
