@@ -31,6 +31,9 @@ from demo_data.detector import canonical_to_raw  # noqa: E402  (simulator layout
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = yaml.safe_load((REPO / "config" / "config.yaml").read_text())
+# The tests below compare the flat with the simulator's pixel response, so they build it
+# without the slit illumination whatever the demo config chooses (tested separately).
+PIXEL_RESPONSE_FLAT = dict(CONFIG["flat"], keep_slit_illumination=False)
 
 # Simulated detector: truth far from the header's nominal GAIN 1.80 / RDNOISE 4.0
 # (demo_data Detector defaults), so recovering it needs a real measurement.
@@ -84,7 +87,7 @@ def night(tmp_path_factory):
         ccd.make_master_flat_file(frames=[paths[f"flat{i}"] for i in range(3)],
                                   bias=str(out / "bias.fits"), master=str(out / "flat.fits"),
                                   qa=str(out / "flat_qa.ecsv"), instrument=instrument,
-                                  overscan=CONFIG["overscan"], flat=CONFIG["flat"])
+                                  overscan=CONFIG["overscan"], flat=PIXEL_RESPONSE_FLAT)
         for key, ftype in (("sci", "science"), ("bright", "standard"), ("arc", "arc")):
             ccd.calibrate_frame_file(raw=paths[key], bias=str(out / "bias.fits"),
                                      flat=str(out / "flat.fits"),
@@ -635,3 +638,33 @@ def test_calibrated_frames_carry_the_standard_keywords(tmp_path, rng):
         assert h[std] == raw[source], std
         assert h[source] == raw[source], source       # the original is kept
     assert h["OBJECT"] == "Tarn Field 3" and h["EXPTIME"] == 600.0
+
+
+def test_flat_keeping_the_slit_illumination_follows_the_lamp_profile(night):
+    # Truth: the simulator's slit illumination of the flat lamp (slit-width ripple,
+    # vignetting and the lamp's own gradient), binned like the detector.
+    inst = night["inst"]
+    out = night["out"]
+    ccd.make_master_flat_file(frames=[night["paths"][f"flat{i}"] for i in range(3)],
+                              bias=str(out / "bias.fits"), master=str(out / "flat_illum.fits"),
+                              qa=str(out / "flat_illum_qa.ecsv"), instrument=ccd_instrument(),
+                              overscan=CONFIG["overscan"],
+                              flat=dict(CONFIG["flat"], keep_slit_illumination=True))
+    flat = read_frame(out / "flat_illum.fits")
+    assert flat.header["FLATILLU"] is True
+    illum = inst.slit_illumination(lamp=True)
+    binned = illum[: illum.size // inst.detector.bin_y * inst.detector.bin_y]
+    binned = binned.reshape(-1, inst.detector.bin_y).mean(axis=1)
+    lo, hi = (v // inst.detector.bin_y for v in inst.slit_rows)
+    rows = np.arange(lo + 4, hi - 3)
+    rows = rows[~np.isin(rows, [y for y, _ in inst.detector.bad_columns_binned()])]
+    measured = np.nanmedian(np.where(flat.mask == 0, flat.data, np.nan)[rows], axis=1)
+    ok = np.isfinite(measured)
+    ratio = (measured[ok] / np.mean(measured[ok])) / (binned[rows][ok] / np.mean(binned[rows][ok]))
+    # the ripple is 1.2 % + 0.6 % and the gradient 3 %; what is left must be far smaller
+    assert np.std(ratio) < 0.002
+    # and the pixel-response-only flat does not carry the profile
+    flat_px = night["flat"]
+    flat_profile = np.nanmedian(np.where(flat_px.mask == 0, flat_px.data, np.nan)[rows], axis=1)
+    flat_profile = flat_profile[np.isfinite(flat_profile)]
+    assert np.std(flat_profile / np.mean(flat_profile)) < 0.002 < np.std(binned[rows] / np.mean(binned[rows]))
