@@ -198,13 +198,6 @@ def render_night_report(out_dir, manifest, night_log, *, title="Night report"):
         body.append("<h2>Missing products</h2>")
         body.append(_html_table(missing["kind", "path", "note"], row_class=lambda r: "bad"))
 
-    for kind in _QA_KINDS:
-        rels = [str(r["path"]) for r in manifest if r["kind"] == kind and r["status"] == "ok"
-                and Path(str(r["path"])).suffix.lower() in (".ecsv", ".json")]
-        if rels:
-            body.append(f"<h2>{_SECTION_TITLES[kind]}</h2>")
-            body.append(_table_section(out_dir, rels))
-
     figures = [str(r["path"]) for r in manifest if r["kind"] == "qa_figure" and r["status"] == "ok"]
     if figures:
         body.append("<h2>QA figures</h2><div class='figs'>")
@@ -213,6 +206,13 @@ def render_night_report(out_dir, manifest, night_log, *, title="Night report"):
             body.append(f"<figure><a href='{name}'><img src='{name}' alt='{name}'></a>"
                         f"<figcaption>{name}</figcaption></figure>")
         body.append("</div>")
+
+    for kind in _QA_KINDS:
+        rels = [str(r["path"]) for r in manifest if r["kind"] == kind and r["status"] == "ok"
+                and Path(str(r["path"])).suffix.lower() in (".ecsv", ".json")]
+        if rels:
+            body.append(f"<h2>{_SECTION_TITLES[kind]} (all numbers)</h2>")
+            body.append(_table_section(out_dir, rels))
 
     body.append("<h2>Products</h2>")
     kinds = Counter(str(k) for k in manifest["kind"]) if len(manifest) else Counter()

@@ -144,3 +144,12 @@ def test_changing_one_option_reruns_only_what_it_affects(reduced_night, tmp_path
     planned = _planned_rules(dry.stdout)
     assert reruns <= planned, planned
     assert not (untouched & planned), planned
+
+
+def test_a_folder_without_raw_frames_stops_with_a_clear_message(tmp_path):
+    (tmp_path / "raw").mkdir()
+    (tmp_path / "raw" / "notes.txt").write_text("not a frame")
+    result = _snakemake("-n", "--config", f"raw_dir={tmp_path / 'raw'}", f"out_dir={tmp_path / 'out'}",
+                        check=False)
+    assert result.returncode != 0
+    assert "no raw files matching" in result.stdout + result.stderr

@@ -26,6 +26,10 @@ if _demo_night_needed():
                    check=True, cwd=workflow.basedir)
 
 NIGHT = take_inventory(RAW, INSTRUMENT)
+if not NIGHT.records:
+    raise WorkflowError(
+        f"{RAW}: no raw files matching {INSTRUMENT.get('file_patterns')}; expected the folder of "
+        "the night's raw FITS frames (set raw_dir, or instrument.file_patterns)")
 # Snakemake hides warnings raised while it parses; say the rejections here (also in night_log.ecsv).
 for _problem in NIGHT.problems():
     print(f"night inventory: {_problem}", file=sys.stderr)
