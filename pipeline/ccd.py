@@ -26,7 +26,19 @@ Mask bits (:mod:`pipeline.maskbits`) set here: BAD_PIXEL (deviant or dead flat
 response, unstable bias), SATURATED (raw value at or above the saturation
 level), COSMIC_RAY (van Dokkum 2001), UNILLUMINATED (outside the slit or too
 little flat-lamp light), NONFINITE.
+
+Raw keywords that describe the raw pixel grid are wrong after trimming and
+reorientation, so no calibrated header carries them (:func:`is_raw_geometry_keyword`):
+FITS WCS keywords of any convention (families indexed by axis, ``CTYPEn``,
+``CDi_j``..., and names starting with ``WCS``), any other keyword family
+indexed by raw axes (``XXXn`` present for two axes, or a matrix ``XXXi_j``),
+names containing ``AXIS``, and section strings ``[x1:x2,y1:y2]``. The binning
+keyword (raw axis order) is replaced by ``BINSPEC``/``BINSPAT``, the raw data
+section by ``RAWDSEC``, and a raw ``SATURATE`` (ADU) by ``SATURADU``, the
+saturation level in ADU that was used.
 """
+
+import re
 
 import logging
 import math
@@ -1500,18 +1512,85 @@ def _write_qa(table_rows, names, meta, path):
     table.write(path, format="ascii.ecsv", overwrite=True)
 
 
-def _frame_header(raw_header, layout, frame_type, instrument):
-    """Raw keywords minus structural and raw-section ones, plus the orientation cards."""
+#: FITS WCS keyword families (Greisen & Calabretta 2002, A&A 395, 1061, table 7), with an
+#: optional alternate-description letter
+_WCS_FAMILY = re.compile(r"^(?:(?:CTYPE|CUNIT|CRPIX|CRVAL|CDELT|CROTA|CRDER|CSYER)\d+"
+                         r"|(?:CD|PC|PV|PS)\d+_\d+"
+                         r"|LONPOLE|LATPOLE|RADESYS|SPECSYS|RESTFRQ|RESTWAV)[A-Z]?$")
+_MATRIX = re.compile(r"^[A-Z]+\d+_\d+[A-Z]?$")          # a keyword indexed by two axes
+_AXIS_INDEXED = re.compile(r"^([A-Z]+)([12])$")          # ... or by one axis
+_SECTION_VALUE = re.compile(r"^\s*\[\s*\d+\s*:\s*\d+\s*,\s*\d+\s*:\s*\d+\s*\]\s*$")
+
+
+def is_raw_geometry_keyword(keyword, value, *, header_keywords=(), keep=()):
+    """True for a keyword about the raw pixel grid (wrong after trim and reorientation).
+
+    Parameters
+    ----------
+    keyword : str
+        Card keyword.
+    value : object
+        Card value.
+    header_keywords : collection of str
+        All keywords of the header (a family ``XXX1``/``XXX2`` counts as axis-indexed
+        only when both are present).
+    keep : collection of str
+        Keywords never dropped (those the configuration names, e.g. setup keywords).
+
+    Returns
+    -------
+    bool
+        True for FITS WCS keywords, names starting with ``WCS`` or containing
+        ``AXIS``, keyword families indexed by two raw axes or by a matrix index
+        ``i_j``, and string values that are pixel sections ``[x1:x2,y1:y2]``.
+    """
+    key = str(keyword).upper()
+    if key in keep:
+        return False
+    if _WCS_FAMILY.match(key) or key.startswith("WCS") or "AXIS" in key or _MATRIX.match(key):
+        return True
+    m = _AXIS_INDEXED.match(key)
+    if m and {m.group(1) + "1", m.group(1) + "2"} <= set(header_keywords):
+        return True
+    return isinstance(value, str) and bool(_SECTION_VALUE.match(value))
+
+
+def _configured_keyword_names(instrument):
+    """Raw keywords the instrument configuration names (never dropped as geometry)."""
+    names = set()
+    for value in list((instrument.get("keywords") or {}).values()) \
+            + list(instrument.get("setup_keywords") or []) \
+            + list(instrument.get("readout_keywords") or []) \
+            + [instrument.get("frame_type_keyword")]:
+        if isinstance(value, str):
+            names.add(value.upper())
+    return names
+
+
+def _frame_header(raw_header, layout, frame_type, instrument, *, keep=()):
+    """Raw keywords minus structural and raw-geometry ones, plus the orientation cards.
+
+    ``keep``: raw keywords kept whatever their name (e.g. those of ``instrument.keywords``)."""
     from astropy.io import fits
     header = fits.Header()
     config_section_keys = {spec.get("keyword") for spec in
                            (instrument.get("sections") or {}).values() if spec}
+    binning_key = instrument.get("binning_keyword")
+    keep = (_configured_keyword_names(instrument) | {str(k).upper() for k in keep if k}) \
+        - {str(binning_key).upper()}
+    present = set(raw_header.keys())
     for card in raw_header.cards:
         if card.keyword in _STRUCTURAL or card.keyword in config_section_keys:
             continue
-        if card.keyword in ("COMMENT", "HISTORY", ""):
+        if card.keyword in ("COMMENT", "HISTORY", "") or card.keyword == binning_key:
+            continue
+        if card.keyword == "SATURATE" or is_raw_geometry_keyword(
+                card.keyword, card.value, header_keywords=present, keep=keep):
             continue
         header[card.keyword] = (card.value, card.comment)
+    if instrument.get("saturation_adu") is not None:
+        header["SATURADU"] = (float(instrument["saturation_adu"]),
+                              "ADU raw saturation level used")
     for card in layout.orientation.header_cards(trim_y0=layout.trim_y0, trim_x0=layout.trim_x0):
         header[card[0]] = card[1:]
     for card in layout.binning_cards():
@@ -1939,7 +2018,8 @@ def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument,
             overscan_options=ov_opts)
     except ValueError as exc:
         raise InputFileError(raw, str(exc)) from None
-    out_header = _frame_header(header, layout, frame_type, instrument)
+    out_header = _frame_header(header, layout, frame_type, instrument,
+                               keep=[v for v in (keywords or {}).values() if isinstance(v, str)])
     for card in standard_keyword_cards(header, keywords):
         out_header[card[0]] = card[1:]
     out_header["GAIN"] = (gain, "e-/ADU gain used to convert to electrons")

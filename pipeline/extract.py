@@ -675,23 +675,27 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
 
 
 # =============================================================================== FITS adapter
-#: header keywords never copied from the calibrated frame into products
+#: storage keywords of the calibrated frame, never copied into products
 _NOT_COPIED = ("SIMPLE", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "EXTEND", "BZERO", "BSCALE",
-               "BLANK", "CHECKSUM", "DATASUM", "BUNIT", "EXTNAME", "WCSAXES", "PCOUNT", "GCOUNT",
-               "XTENSION", "LTV1", "LTV2", "LTM1_1", "LTM2_2", "DATASEC", "BIASSEC", "TRIMSEC")
-_WCS_PREFIX = ("CTYPE", "CUNIT", "CRPIX", "CRVAL", "CDELT", "CD1_", "CD2_", "PC1_", "PC2_",
-               "CROTA", "PV1_", "PV2_", "WCSNAME", "RADESYS", "SPECSYS", "LONPOLE", "LATPOLE")
+               "BLANK", "CHECKSUM", "DATASUM", "BUNIT", "EXTNAME", "PCOUNT", "GCOUNT",
+               "XTENSION")
 
 
 def _product_header(header):
-    """Observation keywords of the calibrated frame, without structure, WCS or provenance."""
+    """Observation keywords of the calibrated frame, without structure, WCS or provenance.
+
+    Pixel-grid keywords (any WCS convention, axis-indexed families, pixel sections) are
+    dropped by the generic rule of :func:`pipeline.ccd.is_raw_geometry_keyword`."""
     from astropy.io import fits
 
+    from .ccd import is_raw_geometry_keyword
+
+    present = set(header.keys())
     out = fits.Header()
     for card in header.cards:
         key = card.keyword
-        if (not key or key in _NOT_COPIED or key.startswith(_WCS_PREFIX)
-                or key in ("COMMENT", "HISTORY", "")
+        if (not key or key in _NOT_COPIED or key in ("COMMENT", "HISTORY", "")
+                or is_raw_geometry_keyword(key, card.value, header_keywords=present)
                 or (key[:5] in ("INPUT", "CALIB") and key[5:].isdigit())
                 or key in ("PIPEVERS", "PIPESTEP", "CFGHASH", "DATE")):
             continue

@@ -51,8 +51,9 @@ correlated by the rectification (``VARCORR``, see :mod:`pipeline.rectify`).
 Header keywords of HDU 0
 ------------------------
 Copied from the calibrated frame: ``OBJECT``, ``EXPTIME`` (s), ``AIRMASS``,
-``DATE-OBS``, ``RA``, ``DEC`` (whatever the raw header had; degrees in the demo
-data), plus any of ``GRATING GRTILT SLITWID CCDSUM FILTER BINSPEC BINSPAT`` present.
+``DATE-OBS``, ``RA``, ``DEC`` (standard names written by the CCD calibration from the
+configured raw keywords, values as the raw header had them; degrees in the demo
+data), plus any of ``GRATING GRTILT SLITWID FILTER BINSPEC BINSPAT`` present.
 Written by the extraction:
 
 ============ ==========================================================
@@ -102,7 +103,7 @@ __all__ = ["Spectrum1D", "sanitise_name", "spectrum_file_name", "write_spectrum"
 
 #: keywords copied from the calibrated frame when present
 COPIED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "GRATING", "GRTILT",
-                   "SLITWID", "CCDSUM", "FILTER", "BINSPEC", "BINSPAT", "MJD-OBS", "INSTRUME")
+                   "SLITWID", "FILTER", "BINSPEC", "BINSPAT", "MJD-OBS", "INSTRUME")
 
 #: keywords every product header carries (the flux calibration relies on them)
 REQUIRED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "SETUP", "FRAMEID",

@@ -668,3 +668,48 @@ def test_flat_keeping_the_slit_illumination_follows_the_lamp_profile(night):
     flat_profile = np.nanmedian(np.where(flat_px.mask == 0, flat_px.data, np.nan)[rows], axis=1)
     flat_profile = flat_profile[np.isfinite(flat_profile)]
     assert np.std(flat_profile / np.mean(flat_profile)) < 0.002 < np.std(binned[rows] / np.mean(binned[rows]))
+
+
+def test_raw_geometry_keywords_not_copied(tmp_path, rng):
+    """Raw WCS, axis-indexed, section, axis and saturation keywords describe the raw pixel
+    grid and are wrong after trim and reorientation: calibrated frames and the products made
+    from them do not carry them (the saturation level is kept in ADU as SATURADU), while
+    observation keywords pass. Truth: the header written here."""
+    from pipeline.extract import _product_header
+    raw_wcs = {"WCSAXES": 2, "CTYPE1": "LINEAR", "CTYPE2": "LINEAR", "CRPIX1": 1.0,
+               "CRVAL1": 4000.0, "CDELT1": 2.1, "CUNIT1": "Angstrom", "CD1_1": 2.1,
+               "CD2_2": 1.0, "PC1_2": 0.0, "CRPIX2A": 3.0, "LTV1": -4.0, "LTV2": 0.0,
+               "LTM1_1": 0.5, "LTM2_2": 0.5, "WCSDIM": 2, "DISPAXIS": 1,
+               "TRIMSEC": "[1:64,1:24]", "CCDSEC": "[1:128,1:48]", "SATURATE": 60000.0,
+               "CCDSUM": "2 1"}
+    kept = {"OBJECT": "Ridge Nebula", "EXPTIME": 300.0, "TELESCOP": "TRO 1.8m",
+            "FILTER1": "GG395", "OBSERVER": "night crew"}   # FILTER1 has no FILTER2: kept
+    instrument, bias, flat, sci = _tiny_night(tmp_path, rng, {**raw_wcs, **kept})
+    ccd.calibrate_frame_file(raw=sci, bias=bias, flat=flat, calibrated=str(tmp_path / "c.fits"),
+                             frame_type="science", instrument=instrument,
+                             keywords={"binning": "CCDSUM"},
+                             calibration={"use_measured_gain": False,
+                                          "cosmic_rays": {"enabled": False}})
+    headers = {"calibrated": read_frame(tmp_path / "c.fits").header,
+               "master bias": read_frame(bias).header, "master flat": read_frame(flat).header}
+    headers["product"] = _product_header(headers["calibrated"])
+    for name, h in headers.items():
+        leaked = sorted(set(raw_wcs) & set(h.keys()))
+        assert not leaked, f"{name} header carries raw geometry keywords {leaked}"
+    for name in ("calibrated", "product"):
+        h = headers[name]
+        assert all(h[k] == v for k, v in kept.items()), name
+        assert h["SATURADU"] == 60000.0                          # instrument.saturation_adu
+        assert (h["BINSPEC"], h["BINSPAT"]) == (2, 1)             # dispersion along FITS axis 1
+
+
+@pytest.mark.parametrize("keyword, value, expected", [
+    ("CRVAL3", 1.0, True), ("PV2_1", 0.0, True), ("CDELT1B", 1.0, True), ("WCSNAMEA", "x", True),
+    ("BIASSEC", "[65:68, 1:24]", True), ("DETSIZE", "[1:2048,1:4096]", True),
+    ("NEWAXIS", 2, True), ("ROT1_2", 0.1, True),
+    ("OBJECT", "[1:2,3:4] field", False), ("GRTILT", 8.9, False), ("INPUT01", "a.fits", False),
+    ("AMPNAME", "A", False)])
+def test_raw_geometry_rule(keyword, value, expected):
+    """The generic rule on single keywords (analytic truth: FITS WCS Paper I keyword families
+    and the section syntax [x1:x2,y1:y2])."""
+    assert ccd.is_raw_geometry_keyword(keyword, value) is expected
