@@ -1686,7 +1686,7 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
     master : str
         Output frame: PRIMARY = bias in ADU (canonical orientation), UNCERT =
         its variance (ADU^2), MASK = BAD_PIXEL where fewer than half the frames
-        survived clipping. Header: ``NCOMBINE``, ``RNMEAS`` (ADU), ``RNMEASE``
+        survived clipping. Header: ``NFRAMES``, ``RNMEAS`` (ADU), ``RNMEASE``
         (e-, with the configured gain), ``RNOK`` (within ``RNTOL`` of the
         configured value), orientation and trim keywords.
     qa : str
@@ -1749,7 +1749,7 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
     for key in ("OBJECT", "EXPTIME", "DATE-OBS", "IMAGETYP"):
         if key in header:
             header.remove(key)
-    header["NCOMBINE"] = (len(paths), "bias frames combined")
+    header["NFRAMES"] = (len(paths), "bias frames combined")
     header["RNMEAS"] = (_finite_or(result.read_noise_adu), "ADU measured read noise (pairs)")
     header["RNMEASE"] = (_finite_or(rn_e), "e- measured read noise, configured gain")
     header["RNCONF"] = (rn_conf, "e- configured read noise")
@@ -1802,7 +1802,7 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
     master : str
         Output frame: PRIMARY = normalised response (canonical), UNCERT = its
         variance, MASK = UNILLUMINATED and BAD_PIXEL bits; extension LAMP = the
-        smooth lamp spectrum divided out. Header: ``NCOMBINE``, ``GAINMEAS``
+        smooth lamp spectrum divided out. Header: ``NFRAMES``, ``GAINMEAS``
         (e-/ADU, photon transfer; -1 when not measurable), ``GAINOK``,
         ``FLATNORM``.
     qa : str
@@ -1906,7 +1906,7 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
     for key in ("OBJECT", "EXPTIME", "DATE-OBS", "IMAGETYP"):
         if key in header:
             header.remove(key)
-    header["NCOMBINE"] = (len(paths), "flat frames combined")
+    header["NFRAMES"] = (len(paths), "flat frames combined")
     header["GAINMEAS"] = (_finite_or(gain_meas), "e-/ADU measured gain (photon transfer)")
     header["GAINCONF"] = (gain_conf, "e-/ADU configured gain")
     header["GAINOK"] = (gain_ok, "measured gain within tolerance")

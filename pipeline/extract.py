@@ -896,7 +896,7 @@ def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, s
         name = f"{stem}_ap{ap}.fits"
         hdr = base.copy()
         hdr["APERTURE"] = (ap, "aperture number (1 = highest S/N)")
-        hdr["APNUM"] = (len(red.traces), "objects traced on this frame")
+        hdr["NOBJECTS"] = (len(red.traces), "objects traced on this frame")
         hdr["APCENPX"] = (round(tr.centre_px, 4), "trace centre at APREFWL, rectified row")
         hdr["APCENAS"] = (round((tr.centre_px - 0.5 * (ny - 1)) * scale, 4),
                           "same, arcsec from the slit centre")

@@ -1117,7 +1117,7 @@ def _read_wcs1d_direct(path, expected_unit):
             if flux_hdu is None or flux_hdu.data.ndim != 1:
                 return None
             header = flux_hdu.header.copy()
-            if header.get("WCSDIM", 1) != 1 or "CTYPE1" not in header:
+            if int(header.get("WCSAXES", 1)) != 1 or "CTYPE1" not in header:
                 return None
             values = np.asarray(flux_hdu.data, dtype=float)
             unc = next(((hdul[n].data, power) for n, power in _UNCERT_HDUS

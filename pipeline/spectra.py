@@ -61,7 +61,7 @@ Written by the extraction:
 ``FRAMEID``  frame id of the exposure
 ``FRAMETYP`` ``standard`` or ``science``
 ``APERTURE`` aperture number on the slit (1 = highest S/N)
-``APNUM``    number of objects traced on this frame
+``NOBJECTS`` number of objects traced on this frame
 ``APCENPX``  trace centre at the reference wavelength, row of the rectified frame
 ``APCENAS``  same, arcsec along the slit from the slit centre
 ``APREFWL``  reference wavelength of APCENPX, Angstrom

@@ -306,7 +306,7 @@ def test_read_noise_warning_and_fallback(night, tmp_path):
     with pytest.warns(CalibrationQualityWarning, match="not measured"):
         ccd.make_master_bias_file(frames=paths[:1], master=str(tmp_path / "b1.fits"),
                                   qa=str(tmp_path / "b1.ecsv"), instrument=ccd_instrument())
-    assert fits.getheader(tmp_path / "b1.fits")["NCOMBINE"] == 1
+    assert fits.getheader(tmp_path / "b1.fits")["NFRAMES"] == 1
 
 
 def test_master_shape_mismatch_names_files(night, tmp_path):

@@ -63,7 +63,7 @@ def good_night(folder):
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     write_raw(folder / "b1.fits", "BIAS", exptime=0.0)
-    write_raw(folder / "b2.fits", "ZERO", exptime=0.0)
+    write_raw(folder / "b2.fits", "BIAS", exptime=0.0)
     write_raw(folder / "f1.fits", "FLAT", exptime=5.0)
     write_raw(folder / "a_early.fits", "ARC", date="2026-03-14T00:10:00",
               extra={"LAMPS": "HgAr,Ne"})

@@ -145,6 +145,7 @@ def test_adapter_writes_readable_products(tmp_path):
         assert key in header, key
     assert header["SETUP"] == "G600_t08.93_s1.2_2x2_NONE" and header["FRAMEID"] == "rls_9016"
     assert header["OBJECT"] == "TRV 9/faint"
+    assert header["NOBJECTS"] == 1 and "APNUM" not in header   # simulator truth: one star
     assert header["INPUT01"] == "frame.fits" and header["CALIB01"] == "arc_solution.fits"
     assert header["PIPEVERS"] and header["CFGHASH"]
     assert header["FLEXPIX"] == pytest.approx(0.2, abs=0.03)  # simulator truth 0.2 px
