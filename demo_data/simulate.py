@@ -373,7 +373,6 @@ def _base_header(inst, frame_type, *, exptime_s, date_obs, grtilt_deg, filter_na
     h["SATURATE"] = (65000, "[ADU] saturation level")
     h["DATASEC"] = (det.datasec, "data section")
     h["BIASSEC"] = (det.biassec, "serial overscan section")
-    h["DISPAXIS"] = (2, "dispersion axis (FITS), lambda decreasing")
     h["CCDTEMP"] = (-110.0, "[C] detector temperature")
     h["SIMULATD"] = (True, "simulated by demo_data.simulate")
     h["SIMSEED"] = (int(seed), "simulator seed of this frame")

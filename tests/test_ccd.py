@@ -713,3 +713,11 @@ def test_raw_geometry_rule(keyword, value, expected):
     """The generic rule on single keywords (analytic truth: FITS WCS Paper I keyword families
     and the section syntax [x1:x2,y1:y2])."""
     assert ccd.is_raw_geometry_keyword(keyword, value) is expected
+
+
+def test_demo_raw_headers_do_not_state_the_dispersion_axis(night):
+    """The dispersion axis comes only from instrument.dispersion_axis: the simulated raw
+    headers must not carry a keyword suggesting another source (nor may calibrated ones)."""
+    for key in ("sci", "arc"):
+        assert "DISPAXIS" not in fits.getheader(night["paths"][key])
+        assert "DISPAXIS" not in fits.getheader(night["out"] / f"{key}_cal.fits")
