@@ -21,6 +21,14 @@ include: "pipeline/rules/fluxcal.smk"
 include: "pipeline/rules/products.smk"
 
 
+# Cheap gathering jobs run on the submitting host when a cluster executor is used.
+localrules:
+    all,
+    night_log,
+    manifest,
+    night_report,
+
+
 rule all:
     input:
         all_products(),
