@@ -140,6 +140,12 @@ def _good(data, variance, mask):
     return (np.asarray(mask) == 0) & np.isfinite(data) & np.isfinite(variance)
 
 
+def _usable_columns(good):
+    """Columns with at least half as many good rows as the best column, shape (nx,)."""
+    n_col = good.sum(axis=0)
+    return (n_col > 0) & (n_col >= 0.5 * n_col.max())
+
+
 def spatial_profile(data, variance, mask, *, max_masked_fraction=0.5):
     """Median of the good pixels of every row.
 
@@ -150,20 +156,36 @@ def spatial_profile(data, variance, mask, *, max_masked_fraction=0.5):
     max_masked_fraction : float
         Rows with more masked pixels are interpolated from their neighbours
         (bad columns of the detector), so they neither hide nor fake objects.
+        The fraction is counted over the *usable* columns only (columns with
+        at least half as many good rows as the best column), so a block of
+        columns masked in every row (e.g. the unilluminated blue end of a
+        large detector) does not count against every row.
 
     Returns
     -------
     ndarray, shape (ny,)
+
+    Raises
+    ------
+    ExtractionError
+        When no row has enough good pixels (no usable column at all).
     """
     data = np.asarray(data, float)
     good = _good(data, variance, mask)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         prof = np.nanmedian(np.where(good, data, np.nan), axis=1)
-    frac_bad = 1.0 - good.mean(axis=1)
+    usable_cols = _usable_columns(good)
+    n_usable = int(usable_cols.sum())
+    if n_usable == 0:
+        raise ExtractionError(f"every pixel of the {good.shape[0]} x {good.shape[1]} frame "
+                              "(rows x columns) is masked; nothing to trace")
+    frac_bad = 1.0 - (good & usable_cols[None, :]).sum(axis=1) / n_usable
     bad = ~np.isfinite(prof) | (frac_bad > max_masked_fraction)
     if bad.all():
-        raise ExtractionError("every row of the frame is masked; nothing to trace")
+        raise ExtractionError(f"every row of the {good.shape[0]} x {good.shape[1]} frame has "
+                              f"more than {100.0 * max_masked_fraction:.0f} % of its usable "
+                              "columns masked; nothing to trace")
     rows = np.arange(prof.size)
     prof[bad] = np.interp(rows[bad], rows[~bad], prof[~bad])
     return prof
@@ -358,16 +380,28 @@ def object_mask(data, variance, mask, wave_map, *, fwhm_guess_px=3.0, snr_min=5.
     sky = np.ones(data.shape, bool)
     if not dets:
         return sky, dets
-    bounds = np.linspace(0, nx, max(n_blocks, 1) + 1).astype(int)
+    # the drift blocks span the usable columns only (the blue end of a large
+    # detector can be unilluminated over many columns: a block there would have
+    # no good pixel); a block that still has too few good pixels is skipped
+    usable = np.flatnonzero(_usable_columns(_good(resid, variance, mask)))
+    c0, c1 = (int(usable[0]), int(usable[-1]) + 1) if usable.size else (0, nx)
+    bounds = np.linspace(c0, c1, max(n_blocks, 1) + 1).astype(int)
     block_prof = []
     for b0, b1 in zip(bounds[:-1], bounds[1:]):
-        block_prof.append(spatial_profile(resid[:, b0:b1], variance[:, b0:b1], mask[:, b0:b1]))
+        try:
+            block_prof.append(spatial_profile(resid[:, b0:b1], variance[:, b0:b1],
+                                              mask[:, b0:b1]))
+        except ExtractionError:
+            block_prof.append(None)
     xb = 0.5 * (bounds[:-1] + bounds[1:] - 1)
     rows = np.arange(ny)
     x = np.arange(nx)
     for d in dets:
         centres = []
         for bp in block_prof:
+            if bp is None:
+                centres.append(np.nan)
+                continue
             sel = np.abs(rows - d.position_px) <= max(d.fwhm_px, 2.0)
             sm = gaussian_filter1d(bp, max(d.fwhm_px / _FWHM_PER_SIGMA, 0.5))
             r = rows[sel]

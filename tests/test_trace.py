@@ -168,3 +168,71 @@ def test_saturated_cores_do_not_widen_the_fwhm(rng):
                       fwhm_guess_px=3.0)
     assert tr.fwhm_px == pytest.approx(2.3548 * np.sqrt(1.2 ** 2 + 1 / 12), rel=0.01)
     assert tr.info["n_bins_saturated"] > 0
+
+
+def _mask_blue_block(f, fraction):
+    """Copy of a simulated frame with its first ``fraction`` of columns unilluminated.
+
+    Like the blue end of the full-size detector, where the flat lamp gives too little
+    light and the CCD step sets UNILLUMINATED in every row: the pixels there hold
+    only noise around zero.
+    """
+    from pipeline.maskbits import MaskBit
+
+    n_cut = int(round(fraction * f["data"].shape[1]))
+    g = dict(f)
+    data, var, mask = f["data"].copy(), f["variance"].copy(), f["mask"].copy()
+    data[:, :n_cut] = np.random.default_rng(7).normal(0.0, 3.0, data[:, :n_cut].shape)
+    var[:, :n_cut] = 9.0
+    mask[:, :n_cut] |= np.uint8(MaskBit.UNILLUMINATED)
+    g.update(data=data, variance=var, mask=mask)
+    return g, n_cut
+
+
+def test_profile_of_a_frame_with_a_masked_block_of_columns(rng):
+    # analytic truth: a Gaussian star at row 30.0 (sigma 1.3 rows) on 60 rows; the first
+    # 60 % of the columns masked in every row, a few whole rows masked (bad columns)
+    from pipeline.maskbits import MaskBit
+    from pipeline.trace import spatial_profile
+
+    ny, nx = 60, 500
+    rows = np.arange(ny)[:, None]
+    img = 400.0 * np.exp(-0.5 * ((rows - 30.0) / 1.3) ** 2) * np.ones((1, nx))
+    data = rng.normal(img, 5.0)
+    var = np.full(data.shape, 25.0)
+    mask = np.zeros(data.shape, np.uint8)
+    mask[:, :300] = MaskBit.UNILLUMINATED
+    mask[[10, 45]] |= np.uint8(MaskBit.BAD_PIXEL)
+    data[:, :300] = 0.0
+    data[[10, 45]] = 1.0e4  # garbage in the bad rows must not come through
+    prof = spatial_profile(data, var, mask)
+    dets = find_objects(prof, fwhm_guess_px=3.0)
+    assert len(dets) == 1
+    assert dets[0].position_px == pytest.approx(30.0, abs=0.05)
+    assert prof[10] < 50 and prof[45] < 50  # interpolated from the neighbours (truth ~0)
+    assert prof[30] == pytest.approx(400.0, rel=0.03)  # median of 200 values, sigma 5
+
+
+def test_standard_with_unilluminated_blue_end_is_masked_and_traced(standard):
+    # the full-size detector's blue end: the first ~14 % of the columns are unilluminated;
+    # here 20 %, more than one of the 8 drift blocks of object_mask. Truth: the simulator's
+    # trace centre in every column.
+    f, n_cut = _mask_blue_block(standard, 0.20)
+    wave = f["truth"].wavelength_map()
+    sky_pixels, dets = object_mask(f["data"], f["variance"], f["mask"], wave,
+                                   fwhm_guess_px=3.0)
+    assert len(dets) == 1
+    truth_y = np.asarray(f["truth"].info["trace"]["trace_y_px"], float)
+    # the star is masked (not sky) along its true trace in every illuminated column
+    cols = np.arange(n_cut, f["data"].shape[1])
+    assert not sky_pixels[np.round(truth_y[cols]).astype(int), cols].any()
+    assert sky_pixels.mean() > 0.7  # and the rest of the slit is sky
+    rect, _ = _rectified(f)
+    traces = trace_frame(rect.data, rect.variance, rect.mask, rect.grid.centres_angstrom(),
+                         fwhm_guess_px=3.0)
+    assert len(traces) == 1 and traces[0].mode == "own"
+    lam = rect.grid.centres_angstrom()
+    lit = lam > wave[:, n_cut].max()  # wavelengths seen by illuminated columns in every row
+    truth = _truth_trace_on_grid(f["truth"], rect.grid)
+    resid = traces[0].position_px(lam[lit]) - truth[lit]
+    assert np.sqrt(np.mean(resid ** 2)) < 0.03  # as the unmasked frame (same star)
