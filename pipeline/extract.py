@@ -755,8 +755,9 @@ def _as_path_or_none(value):
 
 def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, spectra,
                        qa_rectified, qa_spectra, frame_id, frame_type, setup,
-                       spatial_scale_arcsec_per_px, reference=None, rectification=None,
-                       flexure=None, sky=None, tracing=None, extraction=None):
+                       spatial_scale_arcsec_per_px, reference=None, sky_lines=None,
+                       rectification=None, flexure=None, sky=None, tracing=None,
+                       extraction=None):
     """Adapter of the ``extract_spectra`` rule: one calibrated frame to its 1-D products.
 
     Parameters
@@ -768,6 +769,9 @@ def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, s
     reference : str, optional
         Trace table of the setup's standard star (its aperture 1 gives the
         shape that faint objects borrow).
+    sky_lines : str, optional
+        Night-sky line table (a rule input, so that editing it reruns the step);
+        overrides ``flexure['line_list']``.
     rectified : str
         Output: rectified, sky-subtracted frame (frames layout + SKY, SKYVAR,
         BKGVAR, SIGVARF, SIGVARQ, SKYREG extensions; FITS WCS AWAV x SLITPOS).
@@ -800,6 +804,8 @@ def extract_frame_file(*, frame, wavelength, rectified, flexure_table, traces, s
     from .trace import traces_to_table
 
     fo = _options(flexure, FLEXURE_DEFAULTS, "flexure")
+    if sky_lines:
+        fo["line_list"] = sky_lines
     cal = read_frame(frame)
     wave_map = _read_map(wavelength)
     if wave_map.shape != cal.shape:

@@ -131,6 +131,19 @@ def test_lint_finds_nothing_but_the_missing_conda_environments(reduced_night):
     # a flat option: the flats and everything calibrated with them, never the bias
     ("flat", "keep_slit_illumination: false", {"master_flat", "calibrate_frame"},
      {"master_bias", "night_log"}),
+    # a cosmic-ray option: standards and science only (arcs are never searched), so no arc
+    # line search or wavelength solution reruns
+    ("calibration", "cosmic_rays: {enabled: true, sigclip: 5.0, sigfrac: 0.3, objlim: 5.0, "
+     "niter: 2}", {"calibrate_frame", "extract_spectra"},
+     {"master_bias", "master_flat", "find_arc_lines", "solve_wavelength"}),
+    # a grating key no step reads (the blaze is for longslit-grating): nothing is recalibrated
+    ("instrument", "grating: {groove_density_per_mm: 600, order: 1, "
+     "camera_collimator_angle_deg: 30.0, camera_focal_length_mm: 250.0, pixel_size_um: 15.0, "
+     "collimated_beam_mm: 60.0, blaze_wavelength_angstrom: 6000.0, "
+     "detector_pixels_dispersion: 2048, order_blocking_filters: {NONE: null, GG395: 3950.0, "
+     "GG495: 4950.0}}", set(),
+     {"master_bias", "master_flat", "calibrate_frame", "find_arc_lines", "solve_wavelength",
+      "extract_spectra"}),
 ])
 def test_changing_one_option_reruns_only_what_it_affects(reduced_night, tmp_path, section, option,
                                                          reruns, untouched):

@@ -63,10 +63,10 @@ rule calibrate_frame:
         frame=r"[A-Za-z0-9._-]+",
     params:
         frame_type=lambda wc: NIGHT.record(wc.frame).frame_type,
-        instrument=ccd_instrument(),
-        keywords=INSTRUMENT.get("keywords", {}),
+        instrument=key_order_free(ccd_instrument()),
+        keywords=key_order_free(INSTRUMENT.get("keywords", {})),
         overscan=config.get("overscan", {}),
-        calibration=config.get("calibration", {}),
+        calibration=calibration_options,
     log:
         log_path("calibrate_frame", "{frame}"),
     script:

@@ -35,6 +35,16 @@ for _problem in NIGHT.problems():
     print(f"night inventory: {_problem}", file=sys.stderr)
 
 
+def key_order_free(value):
+    """``value`` with every mapping's keys sorted: params compare equal whatever the key order
+    of the config file (Snakemake compares params as text)."""
+    if isinstance(value, dict):
+        return {key: key_order_free(value[key]) for key in sorted(value, key=str)}
+    if isinstance(value, (list, tuple)):
+        return [key_order_free(item) for item in value]
+    return value
+
+
 def out(*parts):
     return str(OUT.joinpath(*parts))
 
@@ -73,6 +83,20 @@ def _frame_calibrations(wildcards):
             "flat": master_flat_path(rec.setup)}
 
 
+def calibration_options(wildcards):
+    """The ``calibration`` section a frame's calibration reads: arcs are never searched for
+    cosmic rays, so their params leave those options out (changing them does not rerun arcs)."""
+    options = dict(config.get("calibration", {}))
+    if NIGHT.record(wildcards.frame).frame_type not in ("standard", "science"):
+        options.pop("cosmic_rays", None)
+    return key_order_free(options)
+
+
+# Params that name files are rule inputs instead (editing the file reruns the step); null
+# means the table shipped in pipeline/data/.
+_SHIPPED_DATA = Path(workflow.basedir) / "pipeline" / "data"
+
+
 # ---- helpers of the wavelength calibration rules (wavelength.smk) ----
 
 import re as _ws_re
@@ -81,6 +105,18 @@ WAVELENGTH_ARCS = sorted({arc.frame_id for setup in NIGHT.setups() for arc in NI
 # wildcard values: exactly the night's arcs (a pattern matching nothing when there are none)
 _WS_ARC_PATTERN = "|".join(_ws_re.escape(a) for a in WAVELENGTH_ARCS) or r"(?!x)x"
 _WS_KEYWORDS = INSTRUMENT.get("keywords", {})
+# the solver's options without the line list, which is an input
+WAVELENGTH_OPTIONS = {k: v for k, v in config.get("wavelength_solution", {}).items()
+                      if k != "line_list"}
+WAVELENGTH_LINE_LIST = (config.get("wavelength_solution", {}).get("line_list")
+                        or str(_SHIPPED_DATA / "arc_lines_air.csv"))
+# the keys of instrument.grating the solver reads (grating.model_from_config, filter_cut_on)
+_WS_GRATING_KEYS = ("groove_density_per_mm", "order", "camera_collimator_angle_deg",
+                    "camera_focal_length_mm", "pixel_size_um", "detector_center_px",
+                    "order_blocking_filters")
+WAVELENGTH_GRATING = key_order_free({k: INSTRUMENT["grating"][k] for k in _WS_GRATING_KEYS
+                                     if k in INSTRUMENT["grating"]})
+WAVELENGTH_LAMPS = key_order_free(INSTRUMENT["lamps"])
 WAVELENGTH_FIGURES = ("lines", "residuals", "residual_map", "dispersion")
 
 
@@ -103,6 +139,10 @@ EXTRACTION_FRAMES = sorted({rec.frame_id for setup in NIGHT.setups()
                             for rec in NIGHT.frames("standard", setup=setup)
                             + NIGHT.frames("science", setup=setup)})
 _EX_PATTERN = "|".join(_ex_re.escape(f) for f in EXTRACTION_FRAMES) or r"(?!x)x"
+# the flexure options without the sky-line table, which is an input
+EXTRACTION_FLEXURE = {k: v for k, v in config.get("flexure", {}).items() if k != "line_list"}
+EXTRACTION_SKY_LINES = (config.get("flexure", {}).get("line_list")
+                        or str(_SHIPPED_DATA / "sky_lines_air.ecsv"))
 
 
 def extraction_reference(frame_id):

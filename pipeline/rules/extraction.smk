@@ -10,6 +10,7 @@ rule extract_spectra:
         wavelength=lambda wc: out("wavelength",
                                   f"{NIGHT.nearest_arc(wc.frame).frame_id}_solution.fits"),
         reference=lambda wc: extraction_reference(wc.frame),
+        sky_lines=EXTRACTION_SKY_LINES,
     output:
         rectified=out("rectified", "{frame}.fits"),
         flexure_table=out("qa", "{frame}_flexure.ecsv"),
@@ -27,7 +28,7 @@ rule extract_spectra:
         setup=lambda wc: NIGHT.record(wc.frame).setup,
         spatial_scale_arcsec_per_px=INSTRUMENT["spatial_scale_arcsec_per_px"],
         rectification=config.get("rectification", {}),
-        flexure=config.get("flexure", {}),
+        flexure=EXTRACTION_FLEXURE,
         sky=config.get("sky", {}),
         tracing=config.get("tracing", {}),
         extraction=config.get("extraction", {}),

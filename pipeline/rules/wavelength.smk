@@ -21,6 +21,7 @@ rule solve_wavelength:
     input:
         arc=out("calibrated", "{arc}.fits"),
         lines=out("wavelength", "{arc}_lines.ecsv"),
+        line_list=WAVELENGTH_LINE_LIST,
     output:
         solution=out("wavelength", "{arc}_solution.fits"),
         qa=out("wavelength", "{arc}_qa.ecsv"),
@@ -35,13 +36,13 @@ rule solve_wavelength:
     wildcard_constraints:
         arc=_WS_ARC_PATTERN,
     params:
-        grating=INSTRUMENT["grating"],
-        lamps=INSTRUMENT["lamps"],
+        grating=WAVELENGTH_GRATING,
+        lamps=WAVELENGTH_LAMPS,
         setup=lambda wc: NIGHT.record(wc.arc).setup,
         tilt_keyword=_WS_KEYWORDS.get("grating_tilt_deg", "GRTILT"),
         lamps_keyword=_WS_KEYWORDS.get("lamps", "LAMPS"),
         filter_keyword=_WS_KEYWORDS.get("filter", "FILTER"),
-        **config.get("wavelength_solution", {}),
+        **WAVELENGTH_OPTIONS,
     log:
         log_path("solve_wavelength", "{arc}"),
     script:
