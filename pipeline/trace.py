@@ -217,6 +217,16 @@ def _fit_gaussian(rows, values, errors, centre0, sigma0):
     return popt, perr
 
 
+
+def _run_around(above, index):
+    """First and last index of the run of True values of ``above`` that contains ``index``."""
+    lo = hi = int(index)
+    while lo > 0 and above[lo - 1]:
+        lo -= 1
+    while hi < above.size - 1 and above[hi + 1]:
+        hi += 1
+    return lo, hi
+
 def find_objects(profile, *, fwhm_guess_px=3.0, snr_min=5.0, max_objects=10,
                  min_separation_fwhm=1.5, extent_snr=1.5, edge_px=2):
     """Find objects in a collapsed spatial profile.
@@ -269,14 +279,9 @@ def find_objects(profile, *, fwhm_guess_px=3.0, snr_min=5.0, max_objects=10,
                               prominence=snr_min * noise,
                               distance=max(1, int(min_separation_fwhm * fwhm_guess_px)))
         new = np.zeros(prof.size, bool)
+        above = (smooth - level) > extent_snr * noise
         for p in peaks:
-            above = (smooth - level) > extent_snr * noise
-            lo = p
-            while lo > 0 and above[lo - 1]:
-                lo -= 1
-            hi = p
-            while hi < prof.size - 1 and above[hi + 1]:
-                hi += 1
+            lo, hi = _run_around(above, p)
             pad = int(np.ceil(2 * fwhm_guess_px))
             new[max(lo - pad, 0):hi + pad + 1] = True
         if np.array_equal(new, excluded) or new.mean() > 0.8:
@@ -296,13 +301,7 @@ def find_objects(profile, *, fwhm_guess_px=3.0, snr_min=5.0, max_objects=10,
             centre, fwhm, amp = float(p), fwhm_guess_px, float(prof[p] - level)
         else:
             centre, fwhm, amp = float(popt[1]), float(popt[2] * _FWHM_PER_SIGMA), float(popt[0])
-        above = (smooth - level) > extent_snr * noise
-        lo = p
-        while lo > 0 and above[lo - 1]:
-            lo -= 1
-        hi = p
-        while hi < prof.size - 1 and above[hi + 1]:
-            hi += 1
+        lo, hi = _run_around(above, p)
         out.append(Detection(centre, snr, fwhm, amp, (float(lo), float(hi))))
     # merge peaks that fitted onto the same object
     out.sort(key=lambda d: -d.snr)
