@@ -44,20 +44,20 @@ _SECTION_TITLES = {
 _MAX_ROWS = 60
 
 #: The headline numbers of each kind of QA table (read from the table's metadata), shown
-#: together at the top of the report; (file-name suffix, title, metadata keys).
+#: together at the top of the report; (folder, file-name prefix, suffix, title, metadata keys).
 _GLANCE = (
-    ("master_bias_", "_qa.ecsv", "Bias: read noise",
+    ("calibrations", "master_bias_", "_qa.ecsv", "Bias: read noise",
      ("n_frames", "read_noise_e_configured_gain", "read_noise_configured_e",
       "read_noise_within_tolerance", "mean_level_adu")),
-    ("master_flat_", "_qa.ecsv", "Flat: gain and bad pixels",
+    ("calibrations", "master_flat_", "_qa.ecsv", "Flat: gain and bad pixels",
      ("n_frames", "gain_measured_e_per_adu", "gain_configured_e_per_adu", "gain_within_tolerance",
       "n_bad", "response_scatter")),
-    ("", "_qa.ecsv", "Wavelength solutions",
+    ("wavelength", "", "_qa.ecsv", "Wavelength solutions",
      ("setup", "n_used", "n_rejected", "rms_angstrom", "rms_px", "rms_km_s", "tilt_nominal_deg",
       "tilt_fitted_deg", "focal_length_nominal_mm", "focal_length_fitted_mm")),
-    ("", "_flexure.ecsv", "Flexure from night-sky lines",
+    ("qa", "", "_flexure.ecsv", "Flexure from night-sky lines",
      ("status", "n_used", "shift_px", "shift_err_px", "shift_kms")),
-    ("sensitivity_", "_qa.ecsv", "Sensitivity fits",
+    ("flux", "sensitivity_", "_qa.ecsv", "Sensitivity fits",
      ("setup", "status", "rms_percent", "rms_binned_percent", "reason")),
 )
 
@@ -129,13 +129,12 @@ def _table_section(out_dir, paths):
 def _glance_section(out_dir, manifest):
     parts = []
     paths = [str(r["path"]) for r in manifest if r["status"] == "ok"]
-    for prefix, suffix, title, keys in _GLANCE:
+    for folder, prefix, suffix, title, keys in _GLANCE:
         rows = []
         for rel in paths:
             name = Path(rel).name
-            if not (name.startswith(prefix) and name.endswith(suffix)):
-                continue
-            if title == "Wavelength solutions" and not rel.startswith("wavelength/"):
+            if not (Path(rel).parent.as_posix() == folder and name.startswith(prefix)
+                    and name.endswith(suffix)):
                 continue
             try:
                 meta = Table.read(out_dir / rel, format="ascii.ecsv").meta
