@@ -6,7 +6,7 @@ min_version("8.0")
 
 configfile: f"{workflow.basedir}/config/config.yaml"
 
-from pipeline.config_check import check_config
+from pipeline.workflow.config_check import check_config
 
 # Every problem on its own line, naming the key; then Snakemake fills the schema defaults.
 check_config(config, f"{workflow.basedir}/config/schema.yaml")
@@ -14,7 +14,8 @@ validate(config, "config/schema.yaml")
 
 
 include: "pipeline/rules/common.smk"
-include: "pipeline/rules/calibration.smk"
+include: "pipeline/rules/night.smk"
+include: "pipeline/rules/ccd.smk"
 include: "pipeline/rules/wavelength.smk"
 include: "pipeline/rules/extraction.smk"
 include: "pipeline/rules/fluxcal.smk"

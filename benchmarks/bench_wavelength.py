@@ -35,10 +35,10 @@ def main(argv=None):
 
     import yaml
     import demo_data.simulate as sim
-    from pipeline import grating as gr
-    from pipeline import wavesol as ws
-    from pipeline.arclines import extract_band, find_arc_lines
-    from pipeline.linelists import read_line_list, species_for_lamps
+    from pipeline.wavelength import grating as gr
+    from pipeline.wavelength import solve as ws
+    from pipeline.wavelength.arclines import extract_band, find_arc_lines
+    from pipeline.wavelength.linelists import read_line_list, species_for_lamps
 
     repo = Path(__file__).resolve().parents[1]
     config = yaml.safe_load((repo / "config" / "config.yaml").read_text())
@@ -114,8 +114,8 @@ def main(argv=None):
 
     from astropy.io import fits
 
-    from pipeline.arclines import find_arc_lines_file
-    from pipeline.frames import Frame, write_frame
+    from pipeline.wavelength.arclines import find_arc_lines_file
+    from pipeline.core.frames import Frame, write_frame
 
     with tempfile.TemporaryDirectory() as tmp:
         header = fits.Header({"GRTILT": args.tilt, "LAMPS": args.lamps, "FILTER": "NONE",

@@ -191,7 +191,7 @@ def truth_pixel_map(header, shape, truth_shape):
 
     Pipeline: ``a = ny-1-y if ORIENT_Y else y``, ``b = nx-1-x if ORIENT_X else x``,
     ``(raw row, raw col) = (b, a) if ORIENT_T else (a, b)``, plus ``TRIM_Y0/X0``
-    (pipeline/ccd.py module docstring). Simulator: ``canonical[yt, xt] = raw[nx-1-xt, yt]``.
+    (pipeline/ccd/calibrate.py module docstring). Simulator: ``canonical[yt, xt] = raw[nx-1-xt, yt]``.
     Returns (yt, xt) int arrays of ``shape``.
     """
     ny, nx = shape

@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 from scipy.special import ndtr
 
-from pipeline import maskbits
-from pipeline.arclines import (LineFlag, continuum_level, extract_band, find_arc_lines,
+from pipeline.core import maskbits
+from pipeline.wavelength.arclines import (LineFlag, continuum_level, extract_band, find_arc_lines,
                                find_arc_lines_file, read_lines_table)
-from pipeline.errors import ArcQualityWarning, InputFileError
-from pipeline.frames import Frame, write_frame
+from pipeline.core.errors import ArcQualityWarning, InputFileError
+from pipeline.core.frames import Frame, write_frame
 
 RN = 4.0  # e-, read noise of the injected spectra (a typical CCD; common practice)
 
@@ -28,7 +28,7 @@ def slit_profile(x, centre, *, width_px, sigma_px, flux):
     """Electrons per pixel of a box (slit image) of ``width_px`` convolved with a Gaussian.
 
     Integrated over each pixel numerically (64 sub-samples), independently of the
-    closed forms in pipeline.arclines.
+    closed forms in pipeline.wavelength.arclines.
     """
     sub = (np.arange(64) + 0.5) / 64 - 0.5
     t = np.asarray(x, float)[..., None] + sub - centre

@@ -1,4 +1,4 @@
-"""Tests of pipeline.ccd against independent truths.
+"""Tests of pipeline.ccd.calibrate against independent truths.
 
 * Simulator truth (demo_data, which never imports pipeline): read noise, gain,
   bias levels, pixel response, cosmic-ray deposits, saturation and the raw ->
@@ -20,11 +20,12 @@ import yaml
 from astropy.io import fits
 from scipy.ndimage import binary_dilation, label, maximum_position
 
-from pipeline import ccd
-from pipeline.errors import CalibrationError, CalibrationQualityWarning, ConfigError
-from pipeline.frames import read_frame
-from pipeline.headers import parse_section
-from pipeline.maskbits import MaskBit
+from pipeline.ccd import calibrate as ccd
+from pipeline.core.errors import CalibrationError, CalibrationQualityWarning, ConfigError
+from pipeline.core.frames import read_frame
+from pipeline.core import headers as hdr
+from pipeline.core.headers import parse_section
+from pipeline.core.maskbits import MaskBit
 
 import demo_data.simulate as sim
 from demo_data.detector import canonical_to_raw  # noqa: E402  (simulator layout helper)
@@ -43,7 +44,7 @@ CR_RATE = 0.3           # cosmic rays / cm2 / s, 7.5x the demo night's, for stat
 
 
 def ccd_instrument(**changes):
-    """The CCD part of the shipped instrument config (what calibration.smk passes)."""
+    """The CCD part of the shipped instrument config (what ccd.smk passes)."""
     ins = CONFIG["instrument"]
     out = {k: ins.get(k) for k in ("pixel_extension", "sections", "gain_e_per_adu",
                                    "read_noise_e", "saturation_adu", "dispersion_axis",
@@ -311,7 +312,7 @@ def test_read_noise_warning_and_fallback(night, tmp_path):
 
 def test_master_shape_mismatch_names_files(night, tmp_path):
     small = read_frame(night["out"] / "bias.fits")
-    from pipeline.frames import Frame, write_frame
+    from pipeline.core.frames import Frame, write_frame
     cut = Frame(small.data[:, :500], small.variance[:, :500], small.mask[:, :500], small.header)
     write_frame(cut, tmp_path / "cut_bias.fits")
     with pytest.raises(CalibrationError, match="cut_bias.fits"):
@@ -675,7 +676,7 @@ def test_raw_geometry_keywords_not_copied(tmp_path, rng):
     grid and are wrong after trim and reorientation: calibrated frames and the products made
     from them do not carry them (the saturation level is kept in ADU as SATURADU), while
     observation keywords pass. Truth: the header written here."""
-    from pipeline.extract import _product_header
+    from pipeline.extraction.extract import _product_header
     raw_wcs = {"WCSAXES": 2, "CTYPE1": "LINEAR", "CTYPE2": "LINEAR", "CRPIX1": 1.0,
                "CRVAL1": 4000.0, "CDELT1": 2.1, "CUNIT1": "Angstrom", "CD1_1": 2.1,
                "CD2_2": 1.0, "PC1_2": 0.0, "CRPIX2A": 3.0, "LTV1": -4.0, "LTV2": 0.0,
@@ -712,7 +713,7 @@ def test_raw_geometry_keywords_not_copied(tmp_path, rng):
 def test_raw_geometry_rule(keyword, value, expected):
     """The generic rule on single keywords (analytic truth: FITS WCS Paper I keyword families
     and the section syntax [x1:x2,y1:y2])."""
-    assert ccd.is_raw_geometry_keyword(keyword, value) is expected
+    assert hdr.is_raw_geometry_keyword(keyword, value) is expected
 
 
 def test_demo_raw_headers_do_not_state_the_dispersion_axis(night):

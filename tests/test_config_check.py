@@ -5,8 +5,8 @@ import copy
 import pytest
 import yaml
 
-from pipeline.config_check import check_config, config_problems
-from pipeline.errors import ConfigError
+from pipeline.workflow.config_check import check_config, config_problems
+from pipeline.core.errors import ConfigError
 
 from conftest import REPO_ROOT
 

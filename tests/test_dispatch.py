@@ -5,7 +5,7 @@ import types
 
 import pytest
 
-from pipeline import workflow
+from pipeline.workflow import dispatch as workflow
 
 
 @pytest.fixture

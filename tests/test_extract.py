@@ -1,4 +1,4 @@
-"""Boxcar and optimal extraction (pipeline/extract.py).
+"""Boxcar and optimal extraction (pipeline/extraction/extract.py).
 
 Truth used here:
 * analytic frames: pixel-integrated Gaussian profiles (scipy.special.ndtr) with
@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 from scipy.special import ndtr
 
-from pipeline.errors import ConfigError
-from pipeline.extract import aperture_weights, extract, reduce_frame
-from pipeline.maskbits import MaskBit
-from pipeline.rectify import resample_rows
-from pipeline.skylines import load_sky_lines
+from pipeline.core.errors import ConfigError
+from pipeline.extraction.extract import aperture_weights, extract, reduce_frame
+from pipeline.core.maskbits import MaskBit
+from pipeline.extraction.rectify import resample_rows
+from pipeline.extraction.skylines import load_sky_lines
 
 NY, NX = 60, 600
 
@@ -226,7 +226,7 @@ def test_simulated_star_variance_near_theoretical_minimum(star_reductions):
 def test_flat_term_per_column_keeps_bright_star_errors_honest(rng):
     # analytic truth: the flat's relative variance falls 4x along x (a faint blue lamp),
     # the CCD step's variance rn^2 + data + c(x) data^2 carries it pixel by pixel
-    from pipeline.sky import flat_term_by_column, variance_model_coefficients
+    from pipeline.extraction.sky import flat_term_by_column, variance_model_coefficients
 
     x = np.arange(NX)
     trace, prof = _profile(x)

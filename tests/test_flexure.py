@@ -1,4 +1,4 @@
-"""Flexure from night-sky lines (pipeline/flexure.py, pipeline/skylines.py).
+"""Flexure from night-sky lines (pipeline/extraction/flexure.py, pipeline/extraction/skylines.py).
 
 Truth used here:
 * demo-simulator truth (independent code): the flexure shift of each frame
@@ -15,10 +15,10 @@ import warnings
 import numpy as np
 import pytest
 
-from pipeline.errors import FlexureWarning
-from pipeline.flexure import C_KMS, apply_flexure, measure_flexure
-from pipeline.skylines import DEFAULT_SKY_LINES, group_blends, load_sky_lines
-from pipeline.trace import object_mask
+from pipeline.core.errors import FlexureWarning
+from pipeline.extraction.flexure import C_KMS, apply_flexure, measure_flexure
+from pipeline.extraction.skylines import DEFAULT_SKY_LINES, group_blends, load_sky_lines
+from pipeline.extraction.trace import object_mask
 
 
 def _reference_rows(reference_dir):

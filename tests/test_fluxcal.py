@@ -1,4 +1,4 @@
-"""Tests of pipeline.fluxcal and pipeline.extinction against independent truth.
+"""Tests of pipeline.fluxcal.sensitivity and pipeline.fluxcal.extinction against independent truth.
 
 Truths used here:
 * analytic integrals of functions tabulated in the tests;
@@ -24,10 +24,10 @@ from astropy.wcs import WCS
 from numpy.testing import assert_allclose
 from scipy.ndimage import gaussian_filter1d
 
-from pipeline import extinction as ext
-from pipeline import fluxcal as fc
-from pipeline.errors import FluxCalibrationWarning, InputFileError
-from pipeline.maskbits import MaskBit
+from pipeline.fluxcal import extinction as ext
+from pipeline.fluxcal import sensitivity as fc
+from pipeline.core.errors import FluxCalibrationWarning, InputFileError
+from pipeline.core.maskbits import MaskBit
 
 # Balmer lines of the synthetic hot standard (air, Angstrom; values from memory, only used to
 # build and mask the synthetic star, never as truth).

@@ -6,9 +6,10 @@ from astropy.io import fits
 from astropy.nddata import CCDData, VarianceUncertainty
 from numpy.testing import assert_array_equal
 
-from pipeline import maskbits, provenance
-from pipeline.errors import InputFileError
-from pipeline.frames import Frame, read_frame, write_frame
+from pipeline.core import maskbits
+from pipeline.core import provenance
+from pipeline.core.errors import InputFileError
+from pipeline.core.frames import Frame, read_frame, write_frame
 
 
 def _frame(rng, shape=(6, 9)):

@@ -5,7 +5,7 @@ Truth used here:
   computed independently from the formulas in that folder's README (source key
   ``computed``);
 * numerical derivatives of the grating equation (analytic truth, independent of the
-  closed forms used in pipeline.grating);
+  closed forms used in pipeline.wavelength.grating);
 * astropy.wcs (WCSLIB) evaluating the FITS grating algorithm of Greisen et al. 2006.
 """
 
@@ -20,8 +20,8 @@ from astropy.io import fits
 from astropy.wcs import WCS
 from numpy.testing import assert_allclose
 
-from pipeline import grating as gr
-from pipeline.errors import ConfigError, OrderOverlapWarning
+from pipeline.wavelength import grating as gr
+from pipeline.core.errors import ConfigError, OrderOverlapWarning
 
 REPO = Path(__file__).resolve().parents[1]
 

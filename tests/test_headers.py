@@ -1,4 +1,4 @@
-"""Tests of pipeline.headers: sections, binning, typed look-ups, header-only reading.
+"""Tests of pipeline.core.headers: sections, binning, typed look-ups, header-only reading.
 
 Truths: the FITS section convention (1-based inclusive, FITS axis 1 first; FITS
 standard 4.0, section 3.3.2 on array order, from memory) checked against numpy
@@ -14,8 +14,8 @@ import pytest
 from astropy.io import fits
 from astropy.time import Time
 
-from pipeline import headers as hdr
-from pipeline.errors import InputFileError
+from pipeline.core import headers as hdr
+from pipeline.core.errors import InputFileError
 
 
 def test_parse_section_and_slices():

@@ -1,4 +1,4 @@
-"""Tests of pipeline.inventory: classification, setups, associations, rejections.
+"""Tests of pipeline.night.inventory: classification, setups, associations, rejections.
 
 The raw frames are small synthetic FITS files written here with astropy (the
 truth is what the test wrote into each header), in the demo instrument's layout:
@@ -17,8 +17,8 @@ from astropy.io import fits
 from astropy.table import Table
 from astropy.time import Time
 
-from pipeline.errors import InputFileWarning
-from pipeline.inventory import frame_id_from_path, take_inventory, write_night_log_file
+from pipeline.core.errors import InputFileWarning
+from pipeline.night.inventory import frame_id_from_path, take_inventory, write_night_log_file
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -228,7 +228,7 @@ def test_gzip_and_duplicate_ids(tmp_path, instrument):
 
 
 def test_not_a_folder(tmp_path, instrument):
-    from pipeline.errors import InputFileError
+    from pipeline.core.errors import InputFileError
     with pytest.raises(InputFileError, match="raw_dir is not a folder"):
         take_inventory(tmp_path / "missing", instrument)
 

@@ -10,8 +10,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from pipeline.errors import ConfigError, InputFileError
-from pipeline.linelists import (DEFAULT_LINE_LIST, parse_lamps, read_line_list,
+from pipeline.core.errors import ConfigError, InputFileError
+from pipeline.wavelength.linelists import (DEFAULT_LINE_LIST, parse_lamps, read_line_list,
                                 species_for_lamps)
 
 REPO = Path(__file__).resolve().parents[1]

@@ -4,8 +4,8 @@ import numpy as np
 from astropy.io import fits
 from astropy.table import Table
 
-from pipeline.manifest import build_manifest, product_kind, write_manifest_file
-from pipeline.report import write_night_report_file
+from pipeline.products.manifest import build_manifest, product_kind, write_manifest_file
+from pipeline.products.report import write_night_report_file
 
 
 def _night_log():

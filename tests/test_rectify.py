@@ -1,4 +1,4 @@
-"""Rectification (pipeline/rectify.py).
+"""Rectification (pipeline/extraction/rectify.py).
 
 Truth used here:
 * a synthetic frame whose pixels hold the exact integral of an analytic
@@ -17,9 +17,9 @@ from astropy.io import fits
 from astropy.wcs import WCS
 from scipy.special import erf
 
-from pipeline.frames import Frame, read_frame, write_frame
-from pipeline.maskbits import MaskBit
-from pipeline.rectify import (WavelengthGrid, pixel_edges_angstrom, rectify, resample_rows,
+from pipeline.core.frames import Frame, read_frame, write_frame
+from pipeline.core.maskbits import MaskBit
+from pipeline.extraction.rectify import (WavelengthGrid, pixel_edges_angstrom, rectify, resample_rows,
                               resampling_weights, slit_wcs_cards, wavelength_grid)
 
 NY, NX = 30, 500

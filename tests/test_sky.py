@@ -1,4 +1,4 @@
-"""Sky model (pipeline/sky.py) against demo-simulator truth and analytic frames.
+"""Sky model (pipeline/extraction/sky.py) against demo-simulator truth and analytic frames.
 
 Truth used here:
 * demo_data (independent simulator): the noise-free sky and object images, the
@@ -16,9 +16,9 @@ import numpy as np
 import pytest
 from scipy.special import erf
 
-from pipeline.maskbits import MaskBit
-from pipeline.sky import fit_sky, subtract_sky, variance_model_coefficients
-from pipeline.trace import object_mask
+from pipeline.core.maskbits import MaskBit
+from pipeline.extraction.sky import fit_sky, subtract_sky, variance_model_coefficients
+from pipeline.extraction.trace import object_mask
 
 import demo_data.simulate as sim
 
@@ -116,7 +116,7 @@ def test_sky_under_the_object_is_interpolated(star_frame, star_sky):
     rows = np.arange(f["data"].shape[0])[:, None]
     aperture = np.abs(rows - trace["trace_y_px"][None, :]) <= 4.2
     sky_err = np.sum(np.where(aperture, model.sky - f["truth"].components["sky"], 0.0))
-    # documented in pipeline/sky.py: the slit ripples under a masked star leave a few 0.1 %
+    # documented in pipeline/extraction/sky.py: the slit ripples under a masked star leave a few 0.1 %
     assert abs(sky_err / np.sum(trace["object_electrons"])) < 0.005
 
 

@@ -1,4 +1,4 @@
-"""The 1-D product (pipeline/spectra.py) and the extraction adapter writing it.
+"""The 1-D product (pipeline/core/spectra.py) and the extraction adapter writing it.
 
 Truth used here:
 * specutils (``Spectrum.read`` with no format argument) and astropy.wcs, which
@@ -16,11 +16,11 @@ from astropy.io import fits
 from astropy.nddata import VarianceUncertainty
 from astropy.table import Table
 
-from pipeline.errors import InputFileError
-from pipeline.frames import Frame, write_frame
-from pipeline.maskbits import MaskBit
-from pipeline.rectify import WavelengthGrid
-from pipeline.spectra import (REQUIRED_KEYWORDS, read_spectrum, sanitise_name,
+from pipeline.core.errors import InputFileError
+from pipeline.core.frames import Frame, write_frame
+from pipeline.core.maskbits import MaskBit
+from pipeline.core.grid import WavelengthGrid
+from pipeline.core.spectra import (REQUIRED_KEYWORDS, read_spectrum, sanitise_name,
                               spectrum_file_name, write_spectrum)
 
 import specutils
@@ -126,7 +126,7 @@ def test_adapter_writes_readable_products(tmp_path):
     from test_extract import _truth_on_grid
     from test_sky import simulated_frame
 
-    from pipeline.extract import extract_frame_file
+    from pipeline.extraction.extract import extract_frame_file
 
     f = simulated_frame("TRV-9", exptime_s=900.0, seed=61, flexure_x_px=0.2)
     cal, wave = _files(tmp_path, f, object_name="TRV 9/faint")
@@ -173,7 +173,7 @@ def test_adapter_writes_readable_products(tmp_path):
 def test_adapter_rejects_a_wavelength_map_of_another_shape(tmp_path):
     from test_sky import simulated_frame
 
-    from pipeline.extract import extract_frame_file
+    from pipeline.extraction.extract import extract_frame_file
 
     f = simulated_frame("TRV-9", exptime_s=60.0, seed=62)
     cal, wave = _files(tmp_path, f, object_name="TRV-9")

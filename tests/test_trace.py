@@ -1,4 +1,4 @@
-"""Object finding and tracing (pipeline/trace.py).
+"""Object finding and tracing (pipeline/extraction/trace.py).
 
 Truth used here:
 * demo-simulator truth (independent code): the trace centre of the star in
@@ -12,9 +12,9 @@ import warnings
 import numpy as np
 import pytest
 
-from pipeline.rectify import rectify, wavelength_grid
-from pipeline.sky import fit_sky, subtract_sky
-from pipeline.trace import (Trace, TracingWarning, find_objects, object_mask, trace_frame,
+from pipeline.extraction.rectify import rectify, wavelength_grid
+from pipeline.extraction.sky import fit_sky, subtract_sky
+from pipeline.extraction.trace import (Trace, TracingWarning, find_objects, object_mask, trace_frame,
                             traces_from_table, traces_to_table)
 
 
@@ -152,8 +152,8 @@ def test_saturated_cores_do_not_widen_the_fwhm(rng):
     # analytic truth: pixel-integrated Gaussian, sigma 1.2 rows; a Gaussian fitted to it
     # has sigma^2 = 1.2^2 + 1/12 (pixel width), FWHM = 2.3548 * 1.234 = 2.906 rows
     from scipy.special import ndtr
-    from pipeline.maskbits import MaskBit
-    from pipeline.trace import trace_object
+    from pipeline.core.maskbits import MaskBit
+    from pipeline.extraction.trace import trace_object
 
     ny, nx = 40, 480
     rows = np.arange(ny)[:, None]
@@ -177,7 +177,7 @@ def _mask_blue_block(f, fraction):
     light and the CCD step sets UNILLUMINATED in every row: the pixels there hold
     only noise around zero.
     """
-    from pipeline.maskbits import MaskBit
+    from pipeline.core.maskbits import MaskBit
 
     n_cut = int(round(fraction * f["data"].shape[1]))
     g = dict(f)
@@ -192,8 +192,8 @@ def _mask_blue_block(f, fraction):
 def test_profile_of_a_frame_with_a_masked_block_of_columns(rng):
     # analytic truth: a Gaussian star at row 30.0 (sigma 1.3 rows) on 60 rows; the first
     # 60 % of the columns masked in every row, a few whole rows masked (bad columns)
-    from pipeline.maskbits import MaskBit
-    from pipeline.trace import spatial_profile
+    from pipeline.core.maskbits import MaskBit
+    from pipeline.extraction.trace import spatial_profile
 
     ny, nx = 60, 500
     rows = np.arange(ny)[:, None]

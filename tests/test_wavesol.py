@@ -9,7 +9,7 @@ Truth used here:
   with a known line-tilt polynomial;
 * astropy.wcs evaluating the FITS grating algorithm (Greisen et al. 2006).
 
-The "calibrated" arcs below are what pipeline.ccd would produce from the simulator's
+The "calibrated" arcs below are what pipeline.ccd.calibrate would produce from the simulator's
 frames: the simulated flat-fielded signal (``illumination_e``) with Poisson and read
 noise in electrons, and variance = signal + read noise^2.
 """
@@ -22,12 +22,12 @@ from astropy.io import fits
 from astropy.wcs import WCS
 from numpy.polynomial import chebyshev as cheb
 
-from pipeline import grating as gr
-from pipeline import wavesol as ws
-from pipeline.arclines import extract_band, find_arc_lines, find_arc_lines_file
-from pipeline.errors import InputFileError, OrderOverlapWarning, WavelengthSolutionError
-from pipeline.frames import Frame, write_frame
-from pipeline.linelists import LineList, read_line_list, species_for_lamps
+from pipeline.wavelength import grating as gr
+from pipeline.wavelength import solve as ws
+from pipeline.wavelength.arclines import extract_band, find_arc_lines, find_arc_lines_file
+from pipeline.core.errors import InputFileError, OrderOverlapWarning, WavelengthSolutionError
+from pipeline.core.frames import Frame, write_frame
+from pipeline.wavelength.linelists import LineList, read_line_list, species_for_lamps
 
 import demo_data.simulate as sim
 
@@ -357,7 +357,7 @@ def test_qa_table_and_figures(solved_arc):
     for key in ("plot_lines", "plot_residuals", "plot_residual_map", "plot_dispersion"):
         with open(solved_arc["out"][key], "rb") as stream:
             assert stream.read(8) == b"\x89PNG\r\n\x1a\n"
-    from pipeline.manifest import product_kind
+    from pipeline.products.manifest import product_kind
     assert product_kind("wavelength/arc_b_qa.ecsv") == "wavelength_qa"
 
 

@@ -3,12 +3,12 @@
 import sys
 from pathlib import Path
 
-from pipeline.inventory import take_inventory
+from pipeline.night.inventory import take_inventory
 
 RAW = Path(config["raw_dir"])
 OUT = Path(config["out_dir"])
 INSTRUMENT = config["instrument"]
-RUN_STEP = "../run_step.py"
+RUN_STEP = "../workflow/run_step.py"
 
 
 def _demo_night_needed():
@@ -53,7 +53,7 @@ def log_path(rule_name, name):
     return str(OUT / "logs" / rule_name / f"{name}.log")
 
 
-# ---- helpers of the CCD calibration rules (calibration.smk) ----
+# ---- helpers of the CCD calibration rules (ccd.smk) ----
 
 _CCD_INSTRUMENT_KEYS = ("pixel_extension", "sections", "gain_e_per_adu", "read_noise_e",
                         "saturation_adu", "dispersion_axis", "wavelength_increases_with_pixel")
@@ -171,7 +171,7 @@ def extraction_products(frame_id):
 
 # ---- helpers of the flux calibration rules (fluxcal.smk) ----
 
-from pipeline.fluxcal import normalise_object_name as _fc_key
+from pipeline.fluxcal.sensitivity import normalise_object_name as _fc_key
 
 FLUXCAL = config.get("flux_calibration", {})
 _FC_TABLES = {_fc_key(name): path for name, path in FLUXCAL.get("standard_flux_tables", {}).items()}

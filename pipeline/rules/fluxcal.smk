@@ -1,4 +1,4 @@
-# Flux calibration (pipeline/fluxcal.py): one sensitivity per setup from the setup's
+# Flux calibration (pipeline/fluxcal/sensitivity.py): one sensitivity per setup from the setup's
 # standard-star spectra, applied to every science spectrum of the setup (and, as a check,
 # to the standards themselves). A setup without a usable standard keeps its extraction
 # products as its (uncalibrated) spectra; the listing in spectra_fluxed/{frame}/ and the

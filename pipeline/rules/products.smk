@@ -33,8 +33,8 @@ rule night_report:
 onerror:
     # Some jobs failed (the others ran to the end with keep-going): list what exists and
     # what is missing, so the morning report still shows the night.
-    from pipeline.manifest import write_manifest_file
-    from pipeline.report import write_night_report_file
+    from pipeline.products.manifest import write_manifest_file
+    from pipeline.products.report import write_night_report_file
 
     try:
         if Path(out("night_log.ecsv")).exists():

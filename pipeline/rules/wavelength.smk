@@ -1,4 +1,4 @@
-# Wavelength calibration (pipeline/arclines.py, pipeline/wavesol.py): lines of every usable
+# Wavelength calibration (pipeline/wavelength/arclines.py, pipeline/wavelength/solve.py): lines of every usable
 # arc are found and measured, then identified with the grating model as seed and fitted in
 # 1-D and 2-D. A setup whose identification fails stops that job with a clear message and
 # writes nothing; the other jobs go on (keep-going).

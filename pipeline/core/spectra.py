@@ -1,0 +1,276 @@
+"""The 1-D spectrum product: one FITS file per exposure and object.
+
+Written by the extraction step into ``spectra/{frame}/`` below the output
+folder, one file per traced object, named ``{OBJECT}_ap{n}.fits`` from the
+sanitised OBJECT keyword (:func:`sanitise_name`) and the aperture number
+``n`` (1 = highest signal-to-noise object on the slit, usually the target;
+then in decreasing S/N). The same folder holds ``extraction.ecsv``, the
+listing of what was written (:data:`LISTING_COLUMNS`).
+
+Reading
+-------
+``specutils.Spectrum.read(path)`` (no format argument; the ``wcs1d-fits``
+reader) gives the **optimal extraction**:
+
+* ``spectral_axis``: air wavelengths of the pixel centres. The file says
+  ``CTYPE1 = 'AWAV'`` (``'AWAV-LOG'`` on a log grid), ``CUNIT1 = 'Angstrom'``
+  (Greisen et al. 2006, A&A 446, 747); astropy.wcs normalises the unit, so the
+  axis comes back in metres: use ``spec.spectral_axis.to(u.AA)``.
+* ``flux``: electron, the total number of electrons of the object in each
+  spectral pixel during the whole exposure (not per second, not per Angstrom).
+* ``uncertainty``: :class:`~astropy.nddata.VarianceUncertainty` in electron².
+* ``mask``: uint8 bits of :mod:`pipeline.core.maskbits` (0 = good; nonzero = do not
+  use). Bits set: NO_COVERAGE outside the frame's coverage, and the OR of the
+  bits of the masked pixels when they carry more than the configured fraction
+  of the spatial profile (cosmic rays, bad pixels, saturation...).
+* ``meta['header']``: the header of HDU 0 (below).
+
+:func:`read_spectrum` reads the same file with astropy only (both
+extractions, as :class:`Spectrum1D` dataclasses).
+
+File layout
+-----------
+========= ======= ==================================================================
+HDU       type    content
+========= ======= ==================================================================
+0 FLUX    image   optimal extraction (Horne 1986), float32, BUNIT electron; header
+1 VAR     image   variance of FLUX, float32, electron² (``UTYPE='VarianceUncertainty'``)
+2 MASK    image   uint8 mask bits of FLUX
+3 BOXFLUX image   boxcar extraction, float32, electron (same grid and WCS)
+4 BOXVAR  image   variance of BOXFLUX, electron²
+5 BOXMASK image   uint8 mask bits of BOXFLUX
+6 SKY     image   sky model summed over the boxcar aperture, electron (what was subtracted)
+7 TRACE   image   trace centre per pixel, float32, rows of the rectified frame (0-based)
+========= ======= ==================================================================
+
+Every image HDU carries the same spectral WCS cards. Variances include the
+error of the sky model, which is fully correlated along the slit and is added
+as such (see :mod:`pipeline.extraction.extract`); neighbouring spectral pixels are
+correlated by the rectification (``VARCORR``, see :mod:`pipeline.extraction.rectify`).
+
+Header keywords of HDU 0
+------------------------
+Copied from the calibrated frame: ``OBJECT``, ``EXPTIME`` (s), ``AIRMASS``,
+``DATE-OBS``, ``RA``, ``DEC`` (standard names written by the CCD calibration from the
+configured raw keywords, values as the raw header had them; degrees in the demo
+data), plus any of ``GRATING GRTILT SLITWID FILTER BINSPEC BINSPAT`` present.
+Written by the extraction:
+
+============ ==========================================================
+``SETUP``    setup id of the inventory (e.g. ``G600_t08.93_s1.2_2x2_NONE``)
+``FRAMEID``  frame id of the exposure
+``FRAMETYP`` ``standard`` or ``science``
+``APERTURE`` aperture number on the slit (1 = highest S/N)
+``NOBJECTS`` number of objects traced on this frame
+``APCENPX``  trace centre at the reference wavelength, row of the rectified frame
+``APCENAS``  same, arcsec along the slit from the slit centre
+``APREFWL``  reference wavelength of APCENPX, Angstrom
+``APHWPX``   boxcar half width, rows
+``APFWHMPX`` spatial FWHM of the profile, rows
+``TRCMODE``  ``own`` (fitted), ``reference`` (shape of a bright reference trace,
+             offset fitted; ``TRCREF`` names the reference frame) or ``fixed``
+``EXTMETH``  ``optimal`` (HDU 0) ; boxcar in HDU 3
+``SNRMED``   median S/N per pixel of FLUX over good pixels
+``NREJECT``  pixels rejected in the profile fit
+``FLEXPIX``  flexure shift applied, pixels along the dispersion (+ = features
+             appear at larger x than in the arc); ``FLEXERR`` its error
+             (-1 = not measured), ``FLEXSTAT`` ``ok``/``no_lines``/``disabled``
+``FLEXKMS``  the same as a velocity, km/s
+``SKYSUB``   T
+``SPECSYS``  ``TOPOCENT``
+``VARCORR``  variance ratio of long sums along the dispersion (rectify.py)
+``VARRN``    variance model of the frame ``a + b S + c S^2``: ``a`` (e2),
+             ``VARGAIN`` = ``b``, ``VARFLAT`` = ``c`` (pipeline.extraction.sky)
+============ ==========================================================
+
+plus the provenance keywords of :func:`pipeline.core.provenance.stamp`
+(``PIPEVERS PIPESTEP CFGHASH DATE INPUTnn CALIBnn``) and FITS checksums.
+"""
+
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from astropy.io import fits
+
+from pipeline.core.errors import InputFileError
+from pipeline.core.maskbits import MASK_DTYPE
+from pipeline.core.grid import WavelengthGrid
+
+__all__ = ["Spectrum1D", "sanitise_name", "spectrum_file_name", "write_spectrum",
+           "read_spectrum", "LISTING_COLUMNS", "COPIED_KEYWORDS", "REQUIRED_KEYWORDS"]
+
+#: keywords copied from the calibrated frame when present
+COPIED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "GRATING", "GRTILT",
+                   "SLITWID", "FILTER", "BINSPEC", "BINSPAT", "MJD-OBS", "INSTRUME")
+
+#: keywords every product header carries (the flux calibration relies on them)
+REQUIRED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "SETUP", "FRAMEID",
+                     "APERTURE", "APCENPX", "APCENAS")
+
+#: columns of the per-frame listing ``spectra/{frame}/extraction.ecsv``
+LISTING_COLUMNS = ("frame_id", "object", "aperture", "file", "trace_px", "trace_arcsec",
+                   "fwhm_px", "trace_mode", "snr_median", "flux_total_e", "status")
+
+_UNSAFE = re.compile(r"[^A-Za-z0-9.+_-]+")
+
+
+def sanitise_name(text, *, fallback="unnamed"):
+    """Make a file-name stem from a header value such as OBJECT.
+
+    Letters, digits and ``. + _ -`` are kept; every other run of characters
+    (path separators, spaces, control characters...) becomes one ``_``;
+    leading ``. _ -`` and trailing ``_`` are stripped, so the result can never
+    be a path, a hidden file or an option-like name; at most 64 characters.
+
+    Examples
+    --------
+    >>> sanitise_name("TFG 42/b")
+    'TFG_42_b'
+    >>> sanitise_name("../..")
+    'unnamed'
+    """
+    cleaned = _UNSAFE.sub("_", str(text)).lstrip("._-").rstrip("_")
+    cleaned = cleaned[:64].rstrip("_")
+    if not cleaned or set(cleaned) <= {".", "_", "-"}:
+        return fallback
+    return cleaned
+
+
+def spectrum_file_name(object_name, aperture):
+    """File name of one product: ``{sanitised OBJECT}_ap{aperture}.fits``."""
+    return f"{sanitise_name(object_name)}_ap{int(aperture)}.fits"
+
+
+@dataclass(frozen=True)
+class Spectrum1D:
+    """One extracted spectrum on a wavelength grid.
+
+    Attributes
+    ----------
+    flux : ndarray, shape (n,), electron
+    variance : ndarray, shape (n,), electron^2
+    mask : ndarray of uint8, shape (n,)
+    grid : WavelengthGrid
+    header : astropy.io.fits.Header
+    """
+
+    flux: np.ndarray
+    variance: np.ndarray
+    mask: np.ndarray
+    grid: WavelengthGrid
+    header: fits.Header = field(default_factory=fits.Header)
+
+    @property
+    def wave_angstrom(self):
+        return self.grid.centres_angstrom()
+
+
+def _image(data, name, grid, *, dtype, bunit=None, comment=None):
+    hdr = fits.Header()
+    for card in grid.wcs_cards(axis=1):
+        hdr.append(card)
+    if bunit is not None:
+        hdr["BUNIT"] = bunit
+    if comment:
+        hdr["COMMENT"] = comment
+    return fits.ImageHDU(np.asarray(data, dtype=dtype), header=hdr, name=name)
+
+
+def write_spectrum(path, grid, header, *, flux, variance, mask, boxcar_flux, boxcar_variance,
+                   boxcar_mask, sky, trace_px, unit="electron"):
+    """Write one 1-D product in the layout of the module docstring.
+
+    Parameters
+    ----------
+    path : str or Path
+    grid : WavelengthGrid
+    header : astropy.io.fits.Header
+        Keywords for HDU 0 (already stamped with provenance by the caller).
+    flux, variance, mask : ndarray, shape (grid.n_pix,)
+        Optimal extraction, electron, electron^2, uint8 bits.
+    boxcar_flux, boxcar_variance, boxcar_mask : ndarray, shape (grid.n_pix,)
+        Boxcar extraction.
+    sky : ndarray, shape (grid.n_pix,), electron
+        Sky model summed over the boxcar aperture.
+    trace_px : ndarray, shape (grid.n_pix,)
+        Trace centre, rows of the rectified frame.
+    """
+    n = grid.n_pix
+    for name, arr in (("flux", flux), ("variance", variance), ("mask", mask),
+                      ("boxcar_flux", boxcar_flux), ("boxcar_variance", boxcar_variance),
+                      ("boxcar_mask", boxcar_mask), ("sky", sky), ("trace_px", trace_px)):
+        if np.shape(arr) != (n,):
+            raise ValueError(f"`{name}` must have shape ({n},) like the grid, got {np.shape(arr)}")
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    hdr0 = header.copy()
+    for key in ("BSCALE", "BZERO", "BLANK", "WCSAXES"):
+        hdr0.remove(key, ignore_missing=True, remove_all=True)
+    for key in [k for k in hdr0 if re.match(r"^(CTYPE|CUNIT|CRPIX|CRVAL|CDELT|CD\d_|PC\d_)", k)]:
+        del hdr0[key]
+    hdr0["EXTNAME"] = "FLUX"
+    hdr0["BUNIT"] = (unit, "electrons per spectral pixel, whole exposure")
+    for card in grid.wcs_cards(axis=1):
+        hdr0[card[0]] = card[1:]
+    hdr0.setdefault("SPECSYS", "TOPOCENT")
+    hdr0.setdefault("EXTMETH", "optimal")
+    primary = fits.PrimaryHDU(np.asarray(flux, dtype=np.float32), header=hdr0)
+    var = _image(variance, "VAR", grid, dtype=np.float32, bunit=f"({unit})2")
+    var.header["UTYPE"] = ("VarianceUncertainty", "astropy.nddata uncertainty class")
+    hdus = [
+        primary, var,
+        _image(mask, "MASK", grid, dtype=MASK_DTYPE, comment="bits of pipeline.core.maskbits; 0 = good"),
+        _image(boxcar_flux, "BOXFLUX", grid, dtype=np.float32, bunit=unit,
+               comment="boxcar extraction"),
+        _image(boxcar_variance, "BOXVAR", grid, dtype=np.float32, bunit=f"({unit})2"),
+        _image(boxcar_mask, "BOXMASK", grid, dtype=MASK_DTYPE),
+        _image(sky, "SKY", grid, dtype=np.float32, bunit=unit,
+               comment="sky model summed over the boxcar aperture"),
+        _image(trace_px, "TRACE", grid, dtype=np.float32, bunit="pixel",
+               comment="trace centre, rows of the rectified frame (0-based)"),
+    ]
+    fits.HDUList(hdus).writeto(path, overwrite=True, checksum=True)
+    return path
+
+
+def read_spectrum(path, *, method="optimal"):
+    """Read one extraction of a 1-D product with astropy only.
+
+    Parameters
+    ----------
+    path : str or Path
+    method : {'optimal', 'boxcar'}
+
+    Returns
+    -------
+    Spectrum1D
+        ``header`` is the header of HDU 0 in both cases.
+
+    Raises
+    ------
+    InputFileError
+        When an HDU is missing or the wavelength WCS is unreadable.
+    """
+    names = {"optimal": ("FLUX", "VAR", "MASK"), "boxcar": ("BOXFLUX", "BOXVAR", "BOXMASK")}
+    if method not in names:
+        raise ValueError(f"`method` must be 'optimal' or 'boxcar', got {method!r}")
+    path = Path(path)
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            present = [h.name for h in hdul]
+            for ext in names[method]:
+                if ext not in present:
+                    raise InputFileError(path, f"HDU {ext} missing (found {present}); expected a "
+                                         "1-D product written by pipeline.core.spectra.write_spectrum")
+            header = hdul[0].header.copy()
+            try:
+                grid = WavelengthGrid.from_header(header, axis=1)
+            except (KeyError, ValueError) as exc:
+                raise InputFileError(path, f"HDU 0 wavelength WCS unreadable: {exc}") from exc
+            flux, var, mask = (np.asarray(hdul[e].data) for e in names[method])
+    except OSError as exc:
+        raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc
+    return Spectrum1D(flux.astype(np.float64), var.astype(np.float64), mask.astype(MASK_DTYPE),
+                      grid, header)

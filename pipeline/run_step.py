@@ -1,4 +1,0 @@
-# Executed by Snakemake's `script:` directive for every rule; see pipeline/workflow.py.
-from pipeline.workflow import run_from_snakemake
-
-run_from_snakemake(snakemake)  # noqa: F821 (injected by Snakemake)
