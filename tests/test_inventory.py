@@ -253,3 +253,103 @@ def test_night_log_columns(tmp_path, instrument):
     assert row["nearest_arc"] == "a_late" and row["bias"] == "2x2"
     assert math.isclose(row["exptime_s"], 10.0)
     assert str(t["exptime_s"].unit) == "s"
+
+
+# -- setups matched within tolerances (pipeline.night.setups) ------------------------
+from pipeline.night.setups import cluster_values, group_setups  # noqa: E402
+
+
+def tolerant(instrument, **tolerances):
+    return {**instrument, "setup_tolerances": tolerances}
+
+
+def night_with_tilts(folder, tilts, *, kind="OBJECT"):
+    """Bias, flat and arc at 8.93, then one frame of ``kind`` per tilt value."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    write_raw(folder / "b1.fits", "BIAS", exptime=0.0)
+    write_raw(folder / "f1.fits", "FLAT", exptime=5.0)
+    write_raw(folder / "a1.fits", "ARC")
+    for i, tilt in enumerate(tilts):
+        write_raw(folder / f"s{i}.fits", kind, obj="T", setup={**SETUP_A, "GRTILT": tilt})
+    return folder
+
+
+def test_cluster_values_single_linkage():
+    # values straddling the 2-decimal rounding boundary 8.925 are one cluster
+    assert cluster_values([8.9249, 8.9251], 0.01).tolist() == [0, 0]
+    # a chain of gaps each below the tolerance is one cluster, whatever its span
+    assert cluster_values([8.93, 8.938, 8.946, 8.954], 0.01).tolist() == [0, 0, 0, 0]
+    # a gap above the tolerance splits; labels follow increasing value, input order kept
+    assert cluster_values([8.97, 8.93, 8.931], 0.01).tolist() == [1, 0, 0]
+    # no tolerance: 1e-6 relative (header float noise) joins, 1e-4 does not
+    assert cluster_values([8.93, 8.9300001, 8.9301], None).tolist() == [0, 0, 1]
+    assert cluster_values([], 0.01).size == 0
+    with pytest.raises(ValueError, match="tolerance"):
+        cluster_values([1.0], -1.0)
+
+
+def test_setup_straddling_a_rounding_boundary_is_one_setup(tmp_path, instrument):
+    # encoder jitter of 2e-4 deg across the boundary of the 2-decimal id (8.925)
+    folder = night_with_tilts(tmp_path, [8.9249, 8.9251, 8.9252])
+    inv, warns = inventory_quiet(folder, tolerant(instrument, GRTILT=0.01))
+    setups = {inv.record(f"s{i}").setup for i in range(3)}
+    assert len(setups) == 1
+    # the id shows the cluster median 8.9251 (+ the flat/arc at 8.93 join: 0.005 < 0.01)
+    assert inv.record("s0").setup == inv.record("f1").setup == "G600_t08.93_s1.2_2x2_NONE"
+    assert all(inv.record(f"s{i}").ok for i in range(3))
+    assert not warns
+
+
+def test_jitter_larger_than_printed_precision_and_distinct_tilts(tmp_path, instrument):
+    # jitter of 0.02 deg in all (> the 0.01 printed precision), in steps < the tolerance
+    folder = night_with_tilts(tmp_path, [8.921, 8.928, 8.935, 8.941])
+    inv, warns = inventory_quiet(folder, tolerant(instrument, GRTILT=0.01))
+    assert len({inv.record(f"s{i}").setup for i in range(4)} | {inv.record("f1").setup}) == 1
+    assert inv.setups() == ["G600_t08.93_s1.2_2x2_NONE"]
+    assert not warns
+    # two truly different tilts (0.04 deg apart, 4 tolerances) stay apart
+    folder = night_with_tilts(tmp_path / "two", [8.93, 8.97, 8.9702])
+    write_raw(folder / "f2.fits", "FLAT", setup={**SETUP_A, "GRTILT": 8.9699})
+    write_raw(folder / "a2.fits", "ARC", setup={**SETUP_A, "GRTILT": 8.9701})
+    inv, _ = inventory_quiet(folder, tolerant(instrument, GRTILT=0.01))
+    assert inv.setups() == ["G600_t08.93_s1.2_2x2_NONE", "G600_t08.97_s1.2_2x2_NONE"]
+    assert inv.record("s1").setup == inv.record("s2").setup == inv.record("f2").setup
+    assert inv.nearest_arc("s2").frame_id == "a2"
+
+
+def test_setup_ids_without_tolerance_and_text_normalised(tmp_path, instrument):
+    # no tolerance configured: distinct values; ids gain decimals so they stay distinct
+    folder = night_with_tilts(tmp_path, [8.931, 8.934])
+    inv, _ = inventory_quiet(folder, instrument | {"setup_tolerances": {}})
+    assert {inv.record("s0").setup, inv.record("s1").setup} == \
+        {"G600_t08.931_s1.2_2x2_NONE", "G600_t08.934_s1.2_2x2_NONE"}
+    assert inv.record("f1").setup == "G600_t08.930_s1.2_2x2_NONE"
+    # text: case and blanks do not split a setup
+    folder = night_with_tilts(tmp_path / "text", [])
+    write_raw(folder / "s_lower.fits", "OBJECT", obj="T",
+              setup={**SETUP_A, "GRATING": " g600 ", "FILTER": "none"})
+    inv, _ = inventory_quiet(folder, instrument)
+    assert inv.record("s_lower").setup == inv.record("f1").setup == "G600_t08.93_s1.2_2x2_NONE"
+    assert inv.record("s_lower").ok
+
+
+def test_chained_setup_is_reported(tmp_path, instrument):
+    # a slow drift over 0.05 deg in steps of 0.008 chains into one setup: said, not hidden
+    folder = night_with_tilts(tmp_path, [8.938, 8.946, 8.954, 8.962, 8.970, 8.978])
+    inv, warns = inventory_quiet(folder, tolerant(instrument, GRTILT=0.01))
+    assert len({r.setup for r in inv.records if r.frame_type != "bias"}) == 1
+    msgs = [str(w.message) for w in warns]
+    assert any("GRTILT: values 8.93 to 8.978 form one setup" in m
+               and "instrument.setup_tolerances.GRTILT" in m for m in msgs)
+    groups = group_setups([{"T": 1.0}, None, {"T": 1.5}], ["T"], tolerances={"T": 1.0})
+    assert groups.ids == ("1.25", "", "1.25") and groups.centres == {"T": (1.25,)}
+
+
+def test_setup_keyword_not_a_number_rejects_that_frame(tmp_path, instrument):
+    folder = night_with_tilts(tmp_path, [8.93])
+    write_raw(folder / "s_bad.fits", "OBJECT", obj="T", setup={**SETUP_A, "GRTILT": "eight"})
+    inv, _ = inventory_quiet(folder, instrument)
+    bad = inv.record("s_bad")
+    assert bad.status == "rejected" and bad.reason == "keyword GRTILT = 'eight'; expected a number"
+    assert inv.record("s0").ok

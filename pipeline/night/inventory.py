@@ -22,22 +22,26 @@ Rules applied, in order:
    of its shape; standard and science frames also need flats and arcs of their
    setup.
 
-Setup ids join the setup-keyword values with ``_`` (e.g.
-``G600_t08.93_s1.2_2x2_NONE``): the grating tilt is written ``t`` + two
-decimals, the slit width ``s`` + up to two decimals, binning as ``2x2``, other
-numbers rounded to 3 decimals, text with anything but letters, digits, ``.``
-and ``-`` replaced by ``-``. Readout ids are built the same way (``2x2``).
+Setups are grouped over the whole night by matching each setup keyword's values
+within a tolerance (``instrument.setup_tolerances``; text with case and blanks
+normalised), never by rounding: see :mod:`pipeline.night.setups`. Setup ids join
+the keywords' cluster values with ``_`` (e.g. ``G600_t08.93_s1.2_2x2_NONE``): the
+grating tilt is written ``t`` + two decimals (of the cluster median), the slit
+width ``s`` + up to two decimals, binning as ``2x2``, other numbers up to 3
+decimals, text upper case with anything but letters, digits, ``.`` and ``-``
+replaced by ``-``. Readout ids are built the same way (``2x2``).
 """
 
 import math
 import re
 import warnings
 from collections import Counter
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from pipeline.core import headers as hdr
 from pipeline.core.errors import InputFileError, InputFileWarning
+from pipeline.night.setups import group_setups, setup_value
 
 __all__ = ["FrameRecord", "NightInventory", "take_inventory", "write_night_log_file",
            "frame_id_from_path", "FRAME_TYPES"]
@@ -85,6 +89,10 @@ class FrameRecord:
         ``(ny, nx)`` of the raw pixel array; ``()`` when unreadable.
     binning : tuple of int
         Binning along FITS axes 1 and 2; ``()`` when not known.
+    id_values : tuple
+        ``(readout values, setup values)``: keyword -> header value as read, from which
+        :func:`assign_ids` groups the night (``()`` when not read; setup values None for
+        biases).
     """
 
     frame_id: str
@@ -102,16 +110,21 @@ class FrameRecord:
     lamps: str = ""
     shape: tuple = ()
     binning: tuple = ()
+    id_values: tuple = field(default=(), compare=False, repr=False)
 
     @property
     def ok(self):
         return self.status == "ok"
 
 
-def _reject(record, reason, status="rejected"):
+def _replace(record, **changes):
     fields_ = asdict(record)
-    fields_.update(status=status, reason=reason)
+    fields_.update(changes)
     return FrameRecord(**fields_)
+
+
+def _reject(record, reason, status="rejected"):
+    return _replace(record, status=status, reason=reason)
 
 
 @dataclass(frozen=True)
@@ -290,48 +303,20 @@ def frame_id_from_path(path):
     return _sanitise(name)
 
 
-def _format_float(value, decimals):
-    rounded = round(float(value), decimals)
-    text = f"{rounded:.{decimals}f}".rstrip("0").rstrip(".")
-    return "0" if text in ("-0", "") else text
-
-
-def _id_part(keyword, value, role, *, path):
-    """One setup/readout-id component from a header value."""
-    if role == "binning":
-        try:
-            bx, by = hdr.parse_binning(value, name=keyword)
-        except ValueError as exc:
-            raise InputFileError(path, str(exc)) from None
-        return f"{bx}x{by}"
-    if role in ("grating_tilt_deg", "slit_width_arcsec"):
-        try:
-            number = float(value)
-        except (TypeError, ValueError):
-            raise InputFileError(path, f"keyword {keyword} = {value!r}; expected a number") \
-                from None
-        if role == "grating_tilt_deg":
-            text = f"{round(number, 2):05.2f}"
-            return "t" + ("0.00" if text in ("-0.00", "-00.00") else text)
-        return "s" + _format_float(number, 2)
-    if isinstance(value, bool):
-        return "T" if value else "F"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        return _format_float(value, 3)
-    return _sanitise(value, allow_underscore=False)
-
-
-def _build_id(header, keywords, roles, *, path):
-    parts = []
+def _id_values(header, keywords, roles, *, path):
+    """The raw values of the setup/readout keywords of one frame (checked, not yet grouped)."""
+    values = {}
     for keyword in keywords:
         value = header.get(keyword)
         if value is None or (isinstance(value, str) and not value.strip()):
             raise InputFileError(path, f"keyword {keyword} missing; expected a value "
                                  "(it defines the setup/readout mode in the config)")
-        parts.append(_id_part(keyword, value, roles.get(keyword), path=path))
-    return "_".join(parts)
+        try:
+            setup_value(keyword, value, roles.get(keyword))
+        except ValueError as exc:
+            raise InputFileError(path, str(exc)) from None
+        values[keyword] = value
+    return values
 
 
 def _frame_type(header, instrument, *, path):
@@ -401,11 +386,14 @@ def _read_record(path, frame_id, instrument):
                                         f"is not a known frame type; expected one of {known} "
                                         "(or list it under instrument.frame_types.ignore)"})
     try:
-        base["readout"] = _build_id(header, instrument.get("readout_keywords", []), roles,
+        readout_values = _id_values(header, instrument.get("readout_keywords", []), roles,
                                     path=path)
+        setup_values = None
         if frame_type != "bias":
-            base["setup"] = _build_id(header, instrument.get("setup_keywords", []), roles,
+            setup_values = _id_values(header, instrument.get("setup_keywords", []), roles,
                                       path=path)
+        base["id_values"] = (readout_values, setup_values)
+        if frame_type != "bias":
             base["exptime_s"] = hdr.header_float(header, kw.get("exposure_time_s", "EXPTIME"),
                                                  path=path)
             if base["exptime_s"] < 0:
@@ -502,6 +490,37 @@ def _check_associations(records):
     return final
 
 
+def assign_ids(records, instrument):
+    """Records with their setup and readout ids, grouped over the whole night.
+
+    Values of each setup/readout keyword are matched within
+    ``instrument.setup_tolerances`` (see :mod:`pipeline.night.setups`); frames
+    without values keep ''. Returns the records and the notes of chained clusters.
+    """
+    kw = instrument.get("keywords", {})
+    roles = {v: k for k, v in kw.items()}
+    tolerances = instrument.get("setup_tolerances") or {}
+    out = list(records)
+    notes = []
+    for index, name, keywords in ((0, "readout", instrument.get("readout_keywords", [])),
+                                  (1, "setup", instrument.get("setup_keywords", []))):
+        rows = [r.id_values[index] if r.id_values else None for r in records]
+        groups = group_setups(rows, keywords, roles=roles, tolerances=tolerances)
+        out = [_replace(rec, **{name: ident}) for rec, ident in zip(out, groups.ids)]
+        notes.extend(groups.notes)
+    return out, notes
+
+
+def _inventory_of(paths, frame_ids, instrument):
+    records = [_read_record(p, fid, instrument) for p, fid in zip(paths, frame_ids)]
+    records, notes = assign_ids(records, instrument)
+    for note in notes:
+        warnings.warn(f"setup grouping: {note}", InputFileWarning, stacklevel=3)
+    records = _check_associations(_check_shapes(records))
+    records.sort(key=lambda r: r.frame_id)
+    return NightInventory(tuple(records))
+
+
 def take_inventory(raw_dir, instrument):
     """Inventory a night's raw folder from the headers only.
 
@@ -529,10 +548,7 @@ def take_inventory(raw_dir, instrument):
         raise InputFileError(raw_dir, "raw_dir is not a folder; expected the folder of the "
                              "night's raw FITS frames (set raw_dir in the config)")
     paths = _find_files(raw_dir, instrument.get("file_patterns", ["*.fits", "*.fit", "*.fits.gz"]))
-    records = [_read_record(p, fid, instrument) for p, fid in zip(paths, _unique_ids(paths))]
-    records = _check_associations(_check_shapes(records))
-    records.sort(key=lambda r: r.frame_id)
-    inventory = NightInventory(tuple(records))
+    inventory = _inventory_of(paths, _unique_ids(paths), instrument)
     for line in inventory.problems():
         warnings.warn(line, InputFileWarning, stacklevel=2)
     return inventory
@@ -565,15 +581,18 @@ def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument):
              if Path(p).resolve() not in known]
     if extra:
         ids = {r.frame_id for r in inventory.records}
-        more = []
+        paths = [Path(r.path) for r in inventory.records]
+        frame_ids = [r.frame_id for r in inventory.records]
         for path in extra:
             fid = frame_id_from_path(path)
             while fid in ids:
                 fid += "-x"
             ids.add(fid)
-            more.append(_read_record(Path(path), fid, instrument))
-        inventory = NightInventory(tuple(sorted(inventory.records + tuple(more),
-                                                key=lambda r: r.frame_id)))
+            paths.append(Path(path))
+            frame_ids.append(fid)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", InputFileWarning)
+            inventory = _inventory_of(paths, frame_ids, instrument)
     table = inventory.to_table()
     Path(night_log).parent.mkdir(parents=True, exist_ok=True)
     table.write(night_log, format="ascii.ecsv", overwrite=True)
