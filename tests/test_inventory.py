@@ -34,10 +34,14 @@ SETUP_B = dict(GRATING="G600", GRTILT=12.5, SLITWID=1.0, CCDSUM="2 2", FILTER="G
 
 
 def write_raw(path, imagetyp, *, shape=(40, 36), date="2026-03-14T01:00:00", obj="",
-              exptime=10.0, setup=SETUP_A, extra=None, drop=()):
-    """A raw frame: 32 data columns + 4 overscan columns, uint16 with BZERO."""
+              exptime=10.0, setup=SETUP_A, extra=None, drop=(), pixels=None):
+    """A raw frame: 32 data columns + 4 overscan columns, uint16 with BZERO (float32 when
+    ``pixels`` are floats)."""
     ny, nx = shape
-    data = np.full(shape, 1000, dtype=np.uint16)
+    if pixels is None:   # a bias-like level with a fixed ripple (the screening wants data)
+        pixels = 1000 + (np.arange(ny * nx) % 7).reshape(shape)
+    data = np.asarray(pixels)
+    data = data.astype(np.uint16) if data.dtype.kind in "iu" else data.astype(np.float32)
     hdu = fits.PrimaryHDU(data)
     h = hdu.header
     h["IMAGETYP"] = imagetyp
@@ -353,3 +357,64 @@ def test_setup_keyword_not_a_number_rejects_that_frame(tmp_path, instrument):
     bad = inv.record("s_bad")
     assert bad.status == "rejected" and bad.reason == "keyword GRTILT = 'eight'; expected a number"
     assert inv.record("s0").ok
+
+
+# -- frames that are not data (pipeline.night.screening) -----------------------------
+def _star_frame(shape=(40, 36), fraction=0.05):
+    pixels = 1000 + (np.arange(shape[0] * shape[1]) % 7).reshape(shape)
+    pixels = pixels.astype(float)
+    n = int(round(fraction * shape[0] * (shape[1] - 4)))
+    pixels[:, 10:32].flat[:n] = 65535        # a saturated core on a few rows
+    return pixels.astype(np.uint16)
+
+
+def _nan_frame(shape=(40, 36)):
+    pixels = 1000.0 + (np.arange(shape[0] * shape[1]) % 7).reshape(shape)
+    pixels[:30] = np.nan                      # 75 % of the rows lost
+    return pixels
+
+
+@pytest.mark.parametrize("case, pixels, expect", [
+    ("saturated", np.full((40, 36), 65535), "% of the sampled pixels are at or above saturation"),
+    ("zero", np.zeros((40, 36), dtype=np.uint16), "every sampled pixel is 0"),
+    ("constant", np.full((40, 36), 1234), "every sampled pixel has the same value 1234"),
+    ("nan", None, "75% of the sampled pixels are NaN or infinite"),
+])
+def test_frames_that_are_not_data_are_rejected_with_reason(tmp_path, instrument, case, pixels,
+                                                           expect):
+    folder = good_night(tmp_path / "raw")
+    pixels = _nan_frame() if case == "nan" else pixels
+    write_raw(folder / "bad.fits", "FLAT", pixels=pixels)
+    write_raw(folder / "star.fits", "OBJECT", obj="Bright", pixels=_star_frame())
+    inv, warns = inventory_quiet(folder, instrument)
+    rec = inv.record("bad")
+    assert rec.status == "rejected" and rec.reason.startswith("not data: ")
+    assert expect in rec.reason and "left out of the night" in rec.reason
+    msgs = [str(w.message) for w in warns if "bad.fits" in str(w.message)]
+    assert len(msgs) == 1 and expect in msgs[0]
+    # the rest of the night goes on: the flat of the setup and a star with 5 % saturated pixels
+    assert inv.record("f1").ok and inv.record("star").ok and inv.record("sci1").ok
+    assert [r.frame_id for r in inv.flats_for(inv.record("sci1").setup)] == ["f1"]
+
+
+def test_screening_thresholds_and_sample(tmp_path, instrument):
+    from pipeline.night.screening import pixel_problem, read_row_sample
+
+    folder = good_night(tmp_path)
+    write_raw(folder / "star.fits", "OBJECT", obj="Bright", pixels=_star_frame(fraction=0.3))
+    # 30 % saturated passes the default 0.5, fails a stricter limit
+    inv, _ = inventory_quiet(folder, instrument)
+    assert inv.record("star").ok
+    with pytest.warns(InputFileWarning, match="star.fits: rejected: not data"):
+        inv = take_inventory(folder, instrument, {"max_saturated_fraction": 0.2})
+    assert inv.record("star").status == "rejected"
+    # rows are sampled evenly within the data section, scaled by BZERO (raw ADU)
+    from pipeline.core.headers import parse_section
+    sample = read_row_sample(folder / "star.fits", n_rows=4, section=parse_section("[1:32,1:40]"))
+    assert sample.shape == (4, 32) and sample.max() == 65535.0 and sample.min() >= 1000.0
+    assert read_row_sample(folder / "star.fits", n_rows=100).shape == (40, 36)
+    # saturation test off without a level; infinities count as not finite
+    assert pixel_problem(np.full(10, 70000.0), saturation_adu=None) is not None  # constant
+    assert pixel_problem(np.r_[np.full(6, np.inf), np.arange(4.0)], saturation_adu=None) \
+        .startswith("not data: 60%")
+    assert pixel_problem(np.array([]), saturation_adu=1.0) is None

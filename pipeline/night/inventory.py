@@ -1,7 +1,7 @@
 """Inventory of one night: classify raw frames, group them, associate calibrations.
 
-The inventory reads headers only (see :mod:`pipeline.core.headers`), so the
-Snakefile can take it at parse time. A bad file never stops the night: it is
+The inventory reads headers (see :mod:`pipeline.core.headers`) and a few pixel
+rows per frame, so the Snakefile can take it at parse time. A bad file never stops the night: it is
 kept in the inventory with ``status='rejected'`` and the reason, and a one-line
 :class:`~pipeline.core.errors.InputFileWarning` names the file and the reason.
 
@@ -18,7 +18,10 @@ Rules applied, in order:
 3. Shape: within a readout mode (biases) or a setup (all others), every
    frame must have the most common shape, and the data and overscan sections
    must lie inside it.
-4. Associations: every non-bias frame needs usable biases of its readout mode,
+4. Pixels: a few evenly spaced rows of the data section are read; a frame that
+   is not data (mostly NaN, all zero, one constant value, saturated nearly
+   everywhere; :mod:`pipeline.night.screening`) is rejected.
+5. Associations: every non-bias frame needs usable biases of its readout mode,
    of its shape; standard and science frames also need flats and arcs of their
    setup.
 
@@ -41,12 +44,16 @@ from pathlib import Path
 
 from pipeline.core import headers as hdr
 from pipeline.core.errors import InputFileError, InputFileWarning
+from pipeline.night.screening import pixel_problem, read_row_sample
 from pipeline.night.setups import group_setups, setup_value
 
 __all__ = ["FrameRecord", "NightInventory", "take_inventory", "write_night_log_file",
            "frame_id_from_path", "FRAME_TYPES"]
 
 FRAME_TYPES = ("bias", "flat", "arc", "standard", "science")
+#: the ``inventory`` config section's defaults (config/schema.yaml)
+SCREENING_DEFAULTS = {"sample_rows": 16, "max_saturated_fraction": 0.5,
+                      "max_nonfinite_fraction": 0.5}
 _TARGETS = ("standard", "science")
 _EXTENSIONS = (".fits.gz", ".fit.gz", ".fts.gz", ".fits.fz", ".fits", ".fit", ".fts", ".gz", ".fz")
 
@@ -336,7 +343,7 @@ def _frame_type(header, instrument, *, path):
 
 
 # -- reading one file ---------------------------------------------------------------
-def _read_record(path, frame_id, instrument):
+def _read_record(path, frame_id, instrument, screening=None):
     """A record for one file; rejection reasons are recorded, never raised."""
     kw = instrument.get("keywords", {})
     roles = {v: k for k, v in kw.items()}
@@ -419,9 +426,31 @@ def _read_record(path, frame_id, instrument):
             if not section.fits_in(shape):
                 raise InputFileError(path, f"{name} section {section} lies outside the "
                                      f"{shape[1]} x {shape[0]} pixel array (NAXIS1 x NAXIS2)")
+            if name == "data":
+                data_section = section
+        _screen_pixels(path, instrument, data_section, screening)
     except InputFileError as exc:
         return FrameRecord(**{**base, "status": "rejected", "reason": exc.problem})
     return FrameRecord(**base)
+
+
+def _screen_pixels(path, instrument, data_section, screening):
+    """Raise InputFileError when a sample of the frame's rows shows it is not data."""
+    options = {**SCREENING_DEFAULTS, **(screening or {})}
+    try:
+        sample = read_row_sample(path, extension=instrument.get("pixel_extension", 0),
+                                 n_rows=options["sample_rows"], section=data_section)
+    except Exception as exc:  # astropy raises many types on damaged data units
+        raise InputFileError(path, f"pixels unreadable ({type(exc).__name__}: {exc}); "
+                             "expected a FITS image (copy the file again from the "
+                             "telescope)") from None
+    problem = pixel_problem(sample, saturation_adu=instrument.get("saturation_adu"),
+                            max_saturated_fraction=options["max_saturated_fraction"],
+                            max_nonfinite_fraction=options["max_nonfinite_fraction"])
+    if problem:
+        raise InputFileError(path, f"{problem}, in {len(sample)} rows of the data section; "
+                             "the frame is left out of the night (look at it, and remove it "
+                             "from raw_dir if it is of no use)")
 
 
 def _unique_ids(paths):
@@ -511,8 +540,8 @@ def assign_ids(records, instrument):
     return out, notes
 
 
-def _inventory_of(paths, frame_ids, instrument):
-    records = [_read_record(p, fid, instrument) for p, fid in zip(paths, frame_ids)]
+def _inventory_of(paths, frame_ids, instrument, screening=None):
+    records = [_read_record(p, fid, instrument, screening) for p, fid in zip(paths, frame_ids)]
     records, notes = assign_ids(records, instrument)
     for note in notes:
         warnings.warn(f"setup grouping: {note}", InputFileWarning, stacklevel=3)
@@ -521,8 +550,8 @@ def _inventory_of(paths, frame_ids, instrument):
     return NightInventory(tuple(records))
 
 
-def take_inventory(raw_dir, instrument):
-    """Inventory a night's raw folder from the headers only.
+def take_inventory(raw_dir, instrument, screening=None):
+    """Inventory a night's raw folder from the headers (and a few pixel rows per frame).
 
     Parameters
     ----------
@@ -530,6 +559,11 @@ def take_inventory(raw_dir, instrument):
         Folder of raw frames (read only).
     instrument : dict
         The ``instrument`` config section (see config/schema.yaml).
+    screening : dict or None
+        The ``inventory`` config section (``sample_rows``,
+        ``max_saturated_fraction``, ``max_nonfinite_fraction``; defaults
+        :data:`SCREENING_DEFAULTS`): frames that are not data are rejected
+        (see :mod:`pipeline.night.screening`).
 
     Returns
     -------
@@ -548,13 +582,13 @@ def take_inventory(raw_dir, instrument):
         raise InputFileError(raw_dir, "raw_dir is not a folder; expected the folder of the "
                              "night's raw FITS frames (set raw_dir in the config)")
     paths = _find_files(raw_dir, instrument.get("file_patterns", ["*.fits", "*.fit", "*.fits.gz"]))
-    inventory = _inventory_of(paths, _unique_ids(paths), instrument)
+    inventory = _inventory_of(paths, _unique_ids(paths), instrument, screening)
     for line in inventory.problems():
         warnings.warn(line, InputFileWarning, stacklevel=2)
     return inventory
 
 
-def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument):
+def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument, screening=None):
     """Write the night log (ECSV, one row per raw file) of ``raw_dir``.
 
     Parameters
@@ -568,10 +602,12 @@ def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument):
         Folder of the night's raw frames.
     instrument : dict
         The ``instrument`` config section.
+    screening : dict or None
+        The ``inventory`` config section (see :func:`take_inventory`).
     """
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", InputFileWarning)
-        inventory = take_inventory(raw_dir, instrument)
+        inventory = take_inventory(raw_dir, instrument, screening)
     import logging
     log = logging.getLogger("pipeline.night_log")
     for w in caught:
@@ -592,7 +628,7 @@ def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument):
             frame_ids.append(fid)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", InputFileWarning)
-            inventory = _inventory_of(paths, frame_ids, instrument)
+            inventory = _inventory_of(paths, frame_ids, instrument, screening)
     table = inventory.to_table()
     Path(night_log).parent.mkdir(parents=True, exist_ok=True)
     table.write(night_log, format="ascii.ecsv", overwrite=True)

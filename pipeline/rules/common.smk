@@ -25,7 +25,7 @@ if _demo_night_needed():
     subprocess.run([sys.executable, "-m", "demo_data.simulate", "--out", str(RAW)],
                    check=True, cwd=workflow.basedir)
 
-NIGHT = take_inventory(RAW, INSTRUMENT)
+NIGHT = take_inventory(RAW, INSTRUMENT, config.get("inventory"))
 if not NIGHT.records:
     raise WorkflowError(
         f"{RAW}: no raw files matching {INSTRUMENT.get('file_patterns')}; expected the folder of "

@@ -8,6 +8,7 @@ rule night_log:
     params:
         raw_dir=lambda wildcards: str(RAW),
         instrument=INSTRUMENT,
+        screening=config.get("inventory"),
     log:
         log_path("night_log", "night_log"),
     script:
