@@ -48,7 +48,7 @@ from pipeline.night.screening import pixel_problem, read_row_sample
 from pipeline.night.setups import group_setups, setup_value
 
 __all__ = ["FrameRecord", "NightInventory", "take_inventory", "write_night_log_file",
-           "frame_id_from_path", "FRAME_TYPES"]
+           "frame_id_from_path", "find_files", "FRAME_TYPES"]
 
 FRAME_TYPES = ("bias", "flat", "arc", "standard", "science")
 #: the ``inventory`` config section's defaults (config/schema.yaml)
@@ -463,7 +463,8 @@ def _unique_ids(paths):
     return ids
 
 
-def _find_files(raw_dir, patterns):
+def find_files(raw_dir, patterns):
+    """Files of ``raw_dir`` matching any of the glob ``patterns`` (sorted, no folders)."""
     raw_dir = Path(raw_dir)
     found = set()
     for pattern in patterns:
@@ -581,7 +582,7 @@ def take_inventory(raw_dir, instrument, screening=None):
     if not raw_dir.is_dir():
         raise InputFileError(raw_dir, "raw_dir is not a folder; expected the folder of the "
                              "night's raw FITS frames (set raw_dir in the config)")
-    paths = _find_files(raw_dir, instrument.get("file_patterns", ["*.fits", "*.fit", "*.fits.gz"]))
+    paths = find_files(raw_dir, instrument.get("file_patterns", ["*.fits", "*.fit", "*.fits.gz"]))
     inventory = _inventory_of(paths, _unique_ids(paths), instrument, screening)
     for line in inventory.problems():
         warnings.warn(line, InputFileWarning, stacklevel=2)
