@@ -676,7 +676,7 @@ def test_raw_geometry_keywords_not_copied(tmp_path, rng):
     grid and are wrong after trim and reorientation: calibrated frames and the products made
     from them do not carry them (the saturation level is kept in ADU as SATURADU), while
     observation keywords pass. Truth: the header written here."""
-    from pipeline.extraction.extract import _product_header
+    from pipeline.extraction.outputs import product_header as _product_header
     raw_wcs = {"WCSAXES": 2, "CTYPE1": "LINEAR", "CTYPE2": "LINEAR", "CRPIX1": 1.0,
                "CRVAL1": 4000.0, "CDELT1": 2.1, "CUNIT1": "Angstrom", "CD1_1": 2.1,
                "CD2_2": 1.0, "PC1_2": 0.0, "CRPIX2A": 3.0, "LTV1": -4.0, "LTV2": 0.0,

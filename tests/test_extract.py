@@ -15,7 +15,8 @@ import pytest
 from scipy.special import ndtr
 
 from pipeline.core.errors import ConfigError
-from pipeline.extraction.extract import aperture_weights, extract, reduce_frame
+from pipeline.extraction.extract import aperture_weights, extract
+from pipeline.extraction.frame import reduce_frame
 from pipeline.core.maskbits import MaskBit
 from pipeline.extraction.rectify import resample_rows
 from pipeline.extraction.skylines import load_sky_lines
@@ -142,7 +143,7 @@ def test_aperture_weights_cover_exactly_the_width():
 
 def test_extract_rejects_bad_input():
     d = np.ones((10, 20))
-    with pytest.raises(ValueError, match="`trace_px` must have shape"):
+    with pytest.raises(ValueError, match="`trace_px` must have 20 elements"):
         extract(d, d, np.zeros(d.shape, np.uint8), np.zeros(19), half_width_px=2)
     with pytest.raises(ValueError, match="`half_width_px`"):
         extract(d, d, np.zeros(d.shape, np.uint8), np.zeros(20), half_width_px=0)
@@ -152,7 +153,7 @@ def test_extract_rejects_bad_input():
 
 def test_reduce_frame_names_unknown_options():
     d = np.ones((10, 20))
-    with pytest.raises(ConfigError, match="extraction: unknown option"):
+    with pytest.raises(ConfigError, match="extraction: unknown key"):
         reduce_frame(d, d, np.zeros(d.shape, np.uint8), np.ones((10, 20)),
                      extraction={"aperture_fwhmm": 2})
 
@@ -226,7 +227,7 @@ def test_simulated_star_variance_near_theoretical_minimum(star_reductions):
 def test_flat_term_per_column_keeps_bright_star_errors_honest(rng):
     # analytic truth: the flat's relative variance falls 4x along x (a faint blue lamp),
     # the CCD step's variance rn^2 + data + c(x) data^2 carries it pixel by pixel
-    from pipeline.extraction.sky import flat_term_by_column, variance_model_coefficients
+    from pipeline.extraction.variance import flat_term_by_column, variance_model_coefficients
 
     x = np.arange(NX)
     trace, prof = _profile(x)
@@ -254,3 +255,22 @@ def test_flat_term_per_column_keeps_bright_star_errors_honest(rng):
     # honest on both ends (one global c would be ~2x off at x = 0 and ~0.6 at the end)
     assert 0.8 < chi2[:, :NX // 4].mean() < 1.2
     assert 0.8 < chi2[:, -NX // 4:].mean() < 1.2
+
+
+def test_module_defaults_match_the_schema():
+    """The step's option defaults are the schema's (one source of truth for users)."""
+    from pathlib import Path
+
+    import yaml
+
+    from pipeline.extraction import frame
+
+    schema = yaml.safe_load((Path(__file__).resolve().parents[1] / "config" / "schema.yaml")
+                            .read_text())["properties"]
+    for section, module_defaults in (("rectification", frame.RECTIFICATION_DEFAULTS),
+                                     ("flexure", frame.FLEXURE_DEFAULTS),
+                                     ("sky", frame.SKY_DEFAULTS),
+                                     ("tracing", frame.TRACING_DEFAULTS),
+                                     ("extraction", frame.EXTRACTION_DEFAULTS)):
+        schema_defaults = {k: v["default"] for k, v in schema[section]["properties"].items()}
+        assert schema_defaults == module_defaults, section

@@ -18,7 +18,7 @@ import pytest
 from pipeline.core.errors import FlexureWarning
 from pipeline.extraction.flexure import C_KMS, apply_flexure, measure_flexure
 from pipeline.extraction.skylines import DEFAULT_SKY_LINES, group_blends, load_sky_lines
-from pipeline.extraction.trace import object_mask
+from pipeline.extraction.detect import object_mask
 
 
 def _reference_rows(reference_dir):

@@ -17,8 +17,9 @@ import pytest
 from scipy.special import erf
 
 from pipeline.core.maskbits import MaskBit
-from pipeline.extraction.sky import fit_sky, subtract_sky, variance_model_coefficients
-from pipeline.extraction.trace import object_mask
+from pipeline.extraction.sky import fit_sky, subtract_sky
+from pipeline.extraction.variance import variance_model_coefficients
+from pipeline.extraction.detect import object_mask
 
 import demo_data.simulate as sim
 

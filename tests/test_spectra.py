@@ -126,7 +126,7 @@ def test_adapter_writes_readable_products(tmp_path):
     from test_extract import _truth_on_grid
     from test_sky import simulated_frame
 
-    from pipeline.extraction.extract import extract_frame_file
+    from pipeline.extraction.steps import extract_frame_file
 
     f = simulated_frame("TRV-9", exptime_s=900.0, seed=61, flexure_x_px=0.2)
     cal, wave = _files(tmp_path, f, object_name="TRV 9/faint")
@@ -151,7 +151,7 @@ def test_adapter_writes_readable_products(tmp_path):
     assert header["FLEXPIX"] == pytest.approx(0.2, abs=0.03)  # simulator truth 0.2 px
     assert header["APCENAS"] == pytest.approx((header["APCENPX"] - 127.5) * 0.4, abs=1e-3)
     # the product's flux against simulator truth (electrons per spectral pixel)
-    truth = _truth_on_grid(f["truth"], red.rectified.grid)
+    truth = _truth_on_grid(f["truth"], red.reduction.rectified.grid)
     good = (np.asarray(spec.mask) == 0) & np.isfinite(truth)
     good[:5] = good[-5:] = False
     ratio = np.sum(spec.flux.value[good]) / np.sum(truth[good])
@@ -173,7 +173,7 @@ def test_adapter_writes_readable_products(tmp_path):
 def test_adapter_rejects_a_wavelength_map_of_another_shape(tmp_path):
     from test_sky import simulated_frame
 
-    from pipeline.extraction.extract import extract_frame_file
+    from pipeline.extraction.steps import extract_frame_file
 
     f = simulated_frame("TRV-9", exptime_s=60.0, seed=62)
     cal, wave = _files(tmp_path, f, object_name="TRV-9")

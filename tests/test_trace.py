@@ -14,8 +14,9 @@ import pytest
 
 from pipeline.extraction.rectify import rectify, wavelength_grid
 from pipeline.extraction.sky import fit_sky, subtract_sky
-from pipeline.extraction.trace import (Trace, TracingWarning, find_objects, object_mask, trace_frame,
-                            traces_from_table, traces_to_table)
+from pipeline.extraction.detect import find_objects, object_mask
+from pipeline.extraction.trace import (Trace, TracingWarning, trace_frame, traces_from_table,
+                                       traces_to_table)
 
 
 def _rectified(f, extra_object=None):
@@ -193,7 +194,7 @@ def test_profile_of_a_frame_with_a_masked_block_of_columns(rng):
     # analytic truth: a Gaussian star at row 30.0 (sigma 1.3 rows) on 60 rows; the first
     # 60 % of the columns masked in every row, a few whole rows masked (bad columns)
     from pipeline.core.maskbits import MaskBit
-    from pipeline.extraction.trace import spatial_profile
+    from pipeline.extraction.detect import spatial_profile
 
     ny, nx = 60, 500
     rows = np.arange(ny)[:, None]

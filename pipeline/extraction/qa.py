@@ -7,7 +7,7 @@
 * :func:`plot_spectra`: every extracted spectrum (optimal, with its 1-sigma
   band; boxcar as a thin line) with masked pixels marked.
 
-Both take the :class:`pipeline.extraction.extract.FrameReduction` of the frame and write
+Both take the :class:`pipeline.extraction.frame.FrameReduction` of the frame and write
 a PNG (matplotlib, Agg backend).
 """
 
@@ -34,7 +34,7 @@ def plot_rectified_frame(reduction, path, *, title="", arcsec_per_px=None):
 
     Parameters
     ----------
-    reduction : pipeline.extraction.extract.FrameReduction
+    reduction : pipeline.extraction.frame.FrameReduction
     path : str or Path
         PNG to write.
     title : str
@@ -98,7 +98,7 @@ def plot_spectra(reduction, path, *, title=""):
 
     Parameters
     ----------
-    reduction : pipeline.extraction.extract.FrameReduction
+    reduction : pipeline.extraction.frame.FrameReduction
     path : str or Path
     title : str
     """

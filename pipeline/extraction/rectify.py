@@ -67,6 +67,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from pipeline.core.checks import as_2d, same_shape
 from pipeline.core.grid import WavelengthGrid
 from pipeline.core.maskbits import MASK_DTYPE, MaskBit
 from pipeline.core.constants import SPEED_OF_LIGHT_KM_S as C_KMS
@@ -76,22 +77,6 @@ __all__ = ["WavelengthGrid", "RectifiedFrame", "wavelength_grid", "pixel_edges_a
 
 
 _OVERLAP_EPS = 1e-6  # fractions below this are rounding at coincident edges, not overlap
-
-
-# -- argument coercers ---------------------------------------------------------------
-def _as_2d(array, name, *, dtype=np.float64):
-    arr = np.asarray(array, dtype=dtype)
-    if arr.ndim != 2:
-        raise ValueError(f"`{name}` must be 2-D (ny, nx), got shape {arr.shape}")
-    return arr
-
-
-def _same_shape(arrays, names):
-    shape = arrays[0].shape
-    for arr, name in zip(arrays[1:], names[1:]):
-        if arr.shape != shape:
-            raise ValueError(f"`{name}` must have the shape of `{names[0]}` {shape}, "
-                             f"got {arr.shape}")
 
 
 def _round_sig(value, digits=3):
@@ -127,7 +112,7 @@ def wavelength_grid(wave_map, *, step_angstrom=None, start_angstrom=None, end_an
     -------
     WavelengthGrid
     """
-    wave_map = _as_2d(wave_map, "wave_map")
+    wave_map = as_2d(wave_map, "wave_map", dtype=np.float64)
     row = wave_map[wave_map.shape[0] // 2]
     good = np.isfinite(row)
     if good.sum() < 2:
@@ -179,7 +164,7 @@ def pixel_edges_angstrom(wave_map):
     ValueError
         When a row is not strictly increasing or not finite.
     """
-    wave_map = _as_2d(wave_map, "wave_map")
+    wave_map = as_2d(wave_map, "wave_map", dtype=np.float64)
     if wave_map.shape[1] < 2:
         raise ValueError(f"`wave_map` needs at least 2 pixels along x, got shape {wave_map.shape}")
     if not np.all(np.isfinite(wave_map)):
@@ -278,7 +263,7 @@ def resample_rows(values, weights, *, power=1):
     -------
     ndarray, shape (ny, n_out)
     """
-    values = _as_2d(values, "values")
+    values = as_2d(values, "values", dtype=np.float64)
     if power not in (1, 2):
         raise ValueError(f"`power` must be 1 or 2, got {power!r}")
     clean = np.where(np.isfinite(values), values, 0.0)
@@ -353,11 +338,11 @@ def rectify(data, variance, mask, wave_map, grid):
     array([[2., 2.],
            [2., 2.]])
     """
-    data = _as_2d(data, "data")
-    variance = _as_2d(variance, "variance")
-    mask = _as_2d(mask, "mask", dtype=MASK_DTYPE)
-    wave_map = _as_2d(wave_map, "wave_map")
-    _same_shape([data, variance, mask, wave_map], ["data", "variance", "mask", "wave_map"])
+    data = as_2d(data, "data", dtype=np.float64)
+    variance = as_2d(variance, "variance", dtype=np.float64)
+    mask = as_2d(mask, "mask", dtype=MASK_DTYPE)
+    wave_map = as_2d(wave_map, "wave_map", dtype=np.float64)
+    same_shape([data, variance, mask, wave_map], ["data", "variance", "mask", "wave_map"])
     if not isinstance(grid, WavelengthGrid):
         raise TypeError(f"`grid` must be a WavelengthGrid, got {type(grid).__name__}")
     nonfinite = ~(np.isfinite(data) & np.isfinite(variance))

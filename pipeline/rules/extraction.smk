@@ -1,4 +1,4 @@
-# From calibrated 2-D frames to 1-D spectra (pipeline/extraction/extract.py with rectify.py, flexure.py,
+# From calibrated 2-D frames to 1-D spectra (pipeline/extraction/steps.py; science in frame.py, rectify.py, flexure.py,
 # sky.py, trace.py, spectra.py, qa_extraction.py): one job per standard or science frame.
 # Objects are masked and the sky fitted on the native pixels, the flexure measured on the
 # night-sky lines, the sky-subtracted frame rectified, the objects traced and extracted.

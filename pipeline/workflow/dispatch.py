@@ -36,7 +36,7 @@ STEPS = {
     "calibrate_frame": ("pipeline.ccd.calibrate", "calibrate_frame_file"),
     "find_arc_lines": ("pipeline.wavelength.arclines", "find_arc_lines_file"),
     "solve_wavelength": ("pipeline.wavelength.solve", "solve_wavelength_file"),
-    "extract_spectra": ("pipeline.extraction.extract", "extract_frame_file"),
+    "extract_spectra": ("pipeline.extraction.steps", "extract_frame_file"),
     "fit_sensitivity": ("pipeline.fluxcal.sensitivity", "fit_sensitivity_file"),
     "flux_calibrate": ("pipeline.fluxcal.sensitivity", "flux_calibrate_file"),
     "manifest": ("pipeline.products.manifest", "write_manifest_file"),
