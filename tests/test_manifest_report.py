@@ -83,12 +83,60 @@ def test_uncalibrated_fluxed_listing_is_flagged_with_its_reason(tmp_path):
     assert "no standard star" in row["note"]
 
 
-def test_report_glance_table_carries_the_wavelength_rms(tmp_path):
-    out = _out_dir(tmp_path)
-    write_manifest_file(products=[], night_log=str(out / "night_log.ecsv"),
+def _report(out, **kwargs):
+    write_manifest_file(products=kwargs.pop("products", []), night_log=str(out / "night_log.ecsv"),
                         manifest=str(out / "manifest.ecsv"), out_dir=str(out))
     write_night_report_file(manifest=str(out / "manifest.ecsv"), night_log=str(out / "night_log.ecsv"),
-                            report=str(out / "r.html"), out_dir=str(out))
-    text = (out / "r.html").read_text()
-    glance = text.split("<h2>At a glance</h2>")[1].split("<h2>")[0]
-    assert "Wavelength solutions" in glance and "0.0158" in glance
+                            report=str(out / "r.html"), out_dir=str(out), **kwargs)
+    return (out / "r.html").read_text()
+
+
+def _section(text, section_id):
+    return text.split(f"<section id='{section_id}'>")[1].split("</section>")[0]
+
+
+def test_calibration_summary_marks_the_wavelength_rms_against_the_limit(tmp_path):
+    out = _out_dir(tmp_path)
+    qa = Table.read(out / "wavelength" / "arc_001_qa.ecsv")
+    qa.meta.update(setup="SETUPA", rms_px=0.04, n_used=31)
+    qa.write(out / "wavelength" / "arc_001_qa.ecsv", overwrite=True)
+    summary = _section(_report(out, limits={"wavelength_max_rms_px": 0.3}), "calibrations")
+    assert "SETUPA" in summary and "0.0158" in summary and "0.0400 px" in summary
+    assert "<span class='mark pass'>" in summary
+    # the same rms against a tighter limit fails (the mark follows the configured limit)
+    summary = _section(_report(out, limits={"wavelength_max_rms_px": 0.03}), "calibrations")
+    assert "<span class='mark fail'>" in summary
+
+
+def test_a_missing_solution_is_a_failed_calibration(tmp_path):
+    out = _out_dir(tmp_path)
+    text = _report(out, products=[str(out / "wavelength" / "arc_001_solution.fits")])
+    assert "no solution" in _section(text, "calibrations")
+    assert "arc_001_solution.fits" in _section(text, "problems")
+
+
+def test_job_log_warnings_and_errors_reach_the_report(tmp_path):
+    out = _out_dir(tmp_path)
+    (out / "logs" / "solve_wavelength").mkdir(parents=True)
+    (out / "logs" / "solve_wavelength" / "arc_001.log").write_text(
+        "2026-03-15 09:00:00,000 INFO pipeline.solve_wavelength: start\n"
+        "2026-03-15 09:00:01,000 WARNING py.warnings: /s/pipeline/wavelength/solve.py:9: "
+        "ArcQualityWarning: 4 of 38 arc lines rejected\n  warnings.warn(msg)\n"
+        "2026-03-15 09:00:01,500 WARNING py.warnings: /s/numpy/core/_methods.py:9: "
+        "RuntimeWarning: Mean of empty slice\n"
+        "2026-03-15 09:00:02,000 ERROR pipeline.solve_wavelength: rule solve_wavelength failed:\n"
+        "Traceback (most recent call last):\n  File \"x.py\", line 1, in <module>\n"
+        "pipeline.core.errors.WavelengthSolutionError: 3 lines left, 5 needed\n")
+    problems = _section(_report(out), "problems")
+    assert "4 of 38 arc lines rejected" in problems and "ArcQualityWarning" in problems
+    assert "WavelengthSolutionError: 3 lines left, 5 needed" in problems
+    # library warnings are kept, one click away
+    library = problems.split("<details>")[1]
+    assert "Mean of empty slice" in library
+
+
+def test_full_tables_use_words_and_fold_away(tmp_path):
+    out = _out_dir(tmp_path)
+    tables = _section(_report(out), "tables")
+    assert "<details>" in tables and "residual (Å)" in tables
+    assert "residual_angstrom" not in tables

@@ -1,165 +1,352 @@
-"""The morning report: one HTML page per night with every QA number and figure.
+"""The morning report: one HTML page per night, written for the observer who reads it first.
 
-The page is built only from what the steps wrote (the night log, the manifest,
-the QA tables and the PNG figures), so it needs to know nothing about the
-steps themselves: a new step's QA table or figure appears in the report as
-soon as the manifest lists it. Figures are linked relative to the output
-folder, so the folder can be copied or served as it is.
+Top to bottom: per setup, whether each calibration succeeded (and any fallback), with its
+key number marked pass / warn / fail against the configured limit; every frame that failed
+or was rejected, with the reason; every warning a job raised (read from the job logs);
+the plot of the night; combined spectra; thumbnails opening the full QA figures; and the
+full QA tables, each one click away in a ``<details>`` block.
+
+The page is built only from what the steps wrote (night log, manifest, QA tables, PNG
+figures, job logs), so a new step's table or figure appears as soon as the manifest lists
+it. It needs nothing from the network: figures are linked relative to the output folder
+(which can be copied or served as it is) and the night plot is embedded as a ``data:``
+PNG. Gathering lives in :mod:`pipeline.products.collect`, words and digits in
+:mod:`pipeline.products.labels`, the night plot in :mod:`pipeline.products.nightplot`.
 """
 
+import base64
 import html
+import io
 from collections import Counter
 from datetime import datetime, timezone
 from pathlib import Path
 
-import numpy as np
+from astropy.io import fits
 from astropy.table import Table
 
 from pipeline import __version__
+from pipeline.products.collect import fallbacks, job_messages, read_meta, setup_summaries
+from pipeline.products.labels import Mark, format_value, label, worst
 
 __all__ = ["render_night_report", "write_night_report_file"]
 
 _STYLE = """
-body { font-family: sans-serif; margin: 1.5em; color: #222; max-width: 1400px; }
-h1 { font-size: 1.5em; } h2 { border-bottom: 2px solid #4a6fa5; padding-bottom: 0.2em; }
-table { border-collapse: collapse; margin: 0.5em 0 1.2em 0; font-size: 0.85em; }
-th, td { border: 1px solid #bbb; padding: 0.2em 0.5em; text-align: left; }
-th { background: #e6edf5; }
-tr.bad td { background: #fbe3e3; } tr.warn td { background: #fff4d6; }
-.figs { display: flex; flex-wrap: wrap; gap: 1em; }
-figure { margin: 0; border: 1px solid #ccc; padding: 0.4em; background: #fafafa; }
-figure img { max-width: 640px; display: block; }
-figcaption { font-size: 0.8em; color: #444; }
-.summary { font-size: 1.05em; }
+body { font-family: system-ui, sans-serif; margin: 0 auto; padding: 1em 1.5em; color: #222;
+       max-width: 1200px; line-height: 1.35; }
+h1 { font-size: 1.45em; margin-bottom: 0.2em; } h2 { border-bottom: 2px solid #4a6fa5;
+     padding-bottom: 0.15em; margin-top: 1.6em; font-size: 1.2em; } h3 { font-size: 1.02em; }
+.wrap { overflow-x: auto; max-width: 100%; }
+table { border-collapse: collapse; margin: 0.3em 0 1em 0; font-size: 0.86em; }
+th, td { border: 1px solid #c8c8c8; padding: 0.2em 0.5em; text-align: left; vertical-align: top; }
+th { background: #e6edf5; font-weight: 600; } td.num { text-align: right;
+     font-variant-numeric: tabular-nums; }
+.mark { display: inline-block; min-width: 3.2em; text-align: center; border-radius: 3px;
+        padding: 0 0.3em; font-weight: 600; font-size: 0.9em; }
+.pass { background: #d7f0dc; color: #1d6b2f; } .warn { background: #fff0c2; color: #7a5600; }
+.fail { background: #f8d3d3; color: #8f1d1d; }
+tr.fail td { background: #fdeeee; } tr.warn td { background: #fffaea; }
+.figs { display: flex; flex-wrap: wrap; gap: 0.6em; }
+figure { margin: 0; border: 1px solid #ccc; padding: 0.3em; background: #fafafa; width: 212px; }
+figure img { width: 210px; height: auto; display: block; }
+figcaption { font-size: 0.75em; color: #444; overflow-wrap: anywhere; }
+img.plot { max-width: 100%; height: auto; border: 1px solid #ddd; }
+details { margin: 0.3em 0; } summary { cursor: pointer; font-weight: 600; }
+.lead { font-size: 1.05em; } .muted { color: #666; font-size: 0.85em; }
 """
 
-_QA_KINDS = ("master_bias_qa", "master_flat_qa", "wavelength_qa", "qa_table", "sensitivity")
-_SECTION_TITLES = {
-    "master_bias_qa": "Master bias",
-    "master_flat_qa": "Master flat",
-    "wavelength_qa": "Wavelength solutions",
-    "qa_table": "Other QA tables",
-    "sensitivity": "Sensitivity (flux calibration)",
-}
-_MAX_ROWS = 60
+_MARK_TEXT = {Mark.PASS: "pass", Mark.WARN: "warn", Mark.FAIL: "fail"}
 
-#: The headline numbers of each kind of QA table (read from the table's metadata), shown
-#: together at the top of the report; (folder, file-name prefix, suffix, title, metadata keys).
-_GLANCE = (
-    ("calibrations", "master_bias_", "_qa.ecsv", "Bias: read noise",
-     ("n_frames", "read_noise_e_configured_gain", "read_noise_configured_e",
-      "read_noise_within_tolerance", "mean_level_adu")),
-    ("calibrations", "master_flat_", "_qa.ecsv", "Flat: gain and bad pixels",
-     ("n_frames", "gain_measured_e_per_adu", "gain_configured_e_per_adu", "gain_within_tolerance",
-      "n_bad", "response_scatter")),
-    ("wavelength", "", "_qa.ecsv", "Wavelength solutions",
-     ("setup", "n_used", "n_rejected", "rms_angstrom", "rms_px", "rms_km_s", "tilt_nominal_deg",
-      "tilt_fitted_deg", "focal_length_nominal_mm", "focal_length_fitted_mm")),
-    ("qa", "", "_flexure.ecsv", "Flexure from night-sky lines",
-     ("status", "n_used", "shift_px", "shift_err_px", "shift_kms")),
-    ("flux", "sensitivity_", "_qa.ecsv", "Sensitivity fits",
-     ("setup", "status", "rms_percent", "rms_binned_percent", "reason")),
+#: QA tables shown in full at the bottom: (manifest kind, heading)
+_FULL_TABLES = (
+    ("master_bias_qa", "Master bias"),
+    ("master_flat_qa", "Master flat"),
+    ("wavelength_qa", "Wavelength solutions"),
+    ("sensitivity", "Sensitivity"),
+    ("qa_table", "Flexure and traces"),
+    ("extraction_listing", "Extracted spectra"),
+    ("fluxed_listing", "Flux-calibrated spectra"),
+    ("coadd_listing", "Combined spectra"),
 )
+_MAX_ROWS = 60
+_NUMERIC = "biufc"
 
 
-def _fmt(value):
-    if value is np.ma.masked:
+def _esc(text):
+    return html.escape(str(text), quote=True)
+
+
+def _mark(mark):
+    if mark not in _MARK_TEXT:
         return ""
-    if isinstance(value, np.ndarray) and value.ndim == 0:
-        value = value.item()
-    if isinstance(value, (float, np.floating)):
-        if not np.isfinite(value):
-            return str(value)
-        return f"{value:.6g}"
-    if isinstance(value, (list, tuple, np.ndarray)):
-        return ", ".join(_fmt(v) for v in value)
-    return str(value)
+    return f"<span class='mark {mark}'>{_MARK_TEXT[mark]}</span>"
 
 
-def _html_table(table, *, row_class=None, max_rows=_MAX_ROWS):
-    cols = [c for c in table.colnames if table[c].ndim <= 2]
-    parts = ["<table><tr>" + "".join(f"<th>{html.escape(c)}</th>" for c in cols) + "</tr>"]
-    for i, row in enumerate(table):
-        if i >= max_rows:
-            parts.append(f"<tr><td colspan='{len(cols)}'>... {len(table) - max_rows} more rows "
-                         "in the file</td></tr>")
-            break
-        cls = row_class(row) if row_class else ""
-        attr = f" class='{cls}'" if cls else ""
-        parts.append(f"<tr{attr}>" + "".join(f"<td>{html.escape(_fmt(row[c]))}</td>"
-                                             for c in cols) + "</tr>")
-    parts.append("</table>")
+def _table(header, rows, *, row_marks=None, numeric=()):
+    """An HTML table (in a scrolling wrapper) of already formatted, unescaped cells; a cell
+    given as ('html', text) is inserted as it is."""
+    out = ["<div class='wrap'><table><tr>" + "".join(f"<th>{_esc(h)}</th>" for h in header)
+           + "</tr>"]
+    for i, row in enumerate(rows):
+        mark = row_marks[i] if row_marks else ""
+        cls = f" class='{mark}'" if mark in (Mark.WARN, Mark.FAIL) else ""
+        cells = []
+        for j, cell in enumerate(row):
+            td = "<td class='num'>" if j in numeric else "<td>"
+            text = cell[1] if isinstance(cell, tuple) and cell[0] == "html" else _esc(cell)
+            cells.append(f"{td}{text}</td>")
+        out.append(f"<tr{cls}>" + "".join(cells) + "</tr>")
+    out.append("</table></div>")
+    return "\n".join(out)
+
+
+def _link(rel, text=None):
+    return ("html", f"<a href='{_esc(rel)}'>{_esc(text or rel)}</a>") if rel else ""
+
+
+# ---------------------------------------------------------------- sections
+
+def _calibration_section(summaries):
+    parts = ["<section id='calibrations'><h2>Calibrations by setup</h2>"]
+    if not summaries:
+        parts.append("<p>No setup with usable arcs, standards or science frames.</p>")
+    for summary in summaries:
+        parts.append(f"<h3>{_mark(summary.mark)} Setup <code>{_esc(summary.setup)}</code> "
+                     f"<span class='muted'>({summary.frames} frames)</span></h3>")
+        rows, marks = [], []
+        for check in summary.checks:
+            rows.append([check.step, _link(check.link, check.item) if check.link else check.item,
+                         check.value, check.limit, ("html", _mark(check.mark)), check.note])
+            marks.append(check.mark)
+        parts.append(_table(("step", "calibration", "result", "limit", "mark", "note"), rows,
+                            row_marks=marks))
+    parts.append("</section>")
+    return "\n".join(parts)
+
+
+def _flexure_messages(out_dir, manifest, known):
+    """'flexure not measured' for frames whose flexure table says so but whose log did not."""
+    found = []
+    for rel in [str(r["path"]) for r in manifest if r["status"] == "ok"
+                and str(r["path"]).endswith("_flexure.ecsv")]:
+        meta = read_meta(Path(out_dir) / rel)
+        status = str(meta.get("status", "ok"))
+        frame = Path(rel).name[: -len("_flexure.ecsv")]
+        if status not in ("ok", "disabled") and frame not in known:
+            found.append(["extract_spectra", frame, "flexure", f"flexure not measured "
+                          f"(status {status}); the arc's wavelengths were used as they are",
+                          _link(rel)])
+    return found
+
+
+def _problems_section(out_dir, manifest, night_log, messages):
+    parts = ["<section id='problems'><h2>Problems and warnings</h2>"]
+    bad = [r for r in night_log if str(r["status"]) != "ok"]
+    bad.sort(key=lambda r: (str(r["status"]) != "rejected", str(r["frame_id"])))
+    if bad:
+        parts.append("<h3>Frames not reduced</h3>")
+        parts.append(_table(("frame", "type", "status", "object", "reason"),
+                            [[r["frame_id"], r["frame_type"], r["status"], r["object"], r["reason"]]
+                             for r in bad],
+                            row_marks=[Mark.FAIL if str(r["status"]) == "rejected" else ""
+                                       for r in bad]))
+    missing = [r for r in manifest if r["status"] == "missing"]
+    if missing:
+        parts.append("<h3>Products not made (failed jobs)</h3>")
+        errors = {(m.job): m.text for m in messages if m.level == "error"}
+        rows = []
+        for r in missing:
+            name = Path(str(r["path"])).name
+            reason = next((t for job, t in errors.items() if name.startswith(job)), "")
+            rows.append([r["kind"], r["path"], reason or r["note"]])
+        parts.append(_table(("kind", "product", "why"), rows, row_marks=[Mark.FAIL] * len(rows)))
+    uncal = [r for r in manifest if r["status"] not in ("ok", "missing") and r["kind"] != "raw_frame"]
+    if uncal:
+        parts.append("<h3>Products with a caveat</h3>")
+        parts.append(_table(("kind", "product", "status", "why"),
+                            [[r["kind"], _link(str(r["path"])), r["status"], r["note"]]
+                             for r in uncal], row_marks=[Mark.WARN] * len(uncal)))
+    ours = [m for m in messages if m.origin == "pipeline"]
+    flagged = {m.job for m in ours if "flexure" in m.text.lower()}
+    rows = [[m.rule, m.job, m.category, m.text, _link(m.log, "log")] for m in ours]
+    rows += _flexure_messages(out_dir, manifest, flagged)
+    parts.append("<h3>Warnings and errors raised by the steps</h3>")
+    if rows:
+        marks = [Mark.FAIL if r[2] == "error" else Mark.WARN for r in rows]
+        parts.append(_table(("step", "job", "kind", "message", ""), rows, row_marks=marks))
+    else:
+        parts.append("<p>None: no step raised a warning.</p>")
+    library = [m for m in messages if m.origin == "library"]
+    if library:
+        parts.append(f"<details><summary>{len(library)} warnings from libraries (numpy, "
+                     "astropy, ...)</summary>")
+        parts.append(_table(("step", "job", "kind", "message", ""),
+                            [[m.rule, m.job, m.category, m.text, _link(m.log, "log")]
+                             for m in library]))
+        parts.append("</details>")
+    parts.append("</section>")
+    return "\n".join(parts)
+
+
+def _seeing(out_dir, manifest, spatial_scale_arcsec_per_px):
+    """Frame id -> FWHM (arcsec) of the own-traced aperture 1 (spectrum headers)."""
+    seeing = {}
+    if not spatial_scale_arcsec_per_px:
+        return seeing
+    for r in manifest:
+        if r["kind"] != "spectrum_1d" or r["status"] != "ok" or not str(r["path"]).endswith(
+                "_ap1.fits"):
+            continue
+        try:
+            header = fits.getheader(Path(out_dir) / str(r["path"]))
+        except (OSError, ValueError):
+            continue
+        if str(header.get("TRCMODE", "own")) != "own" or "APFWHMPX" not in header:
+            continue
+        frame = str(header.get("FRAMEID", Path(str(r["path"])).parent.name))
+        seeing[frame] = (float(header["APFWHMPX"]) * float(spatial_scale_arcsec_per_px)
+                         * float(header.get("BINSPAT", 1)))
+    return seeing
+
+
+def _night_section(out_dir, manifest, night_log, *, spatial_scale_arcsec_per_px, title):
+    from pipeline.products.nightplot import night_timeline, plot_night
+
+    parts = ["<section id='night'><h2>Night plot</h2>"]
+    rows = night_timeline(night_log, seeing_arcsec=_seeing(out_dir, manifest,
+                                                           spatial_scale_arcsec_per_px))
+    if rows:
+        fig = plot_night(rows, title=title)
+        buffer = io.BytesIO()
+        fig.savefig(buffer, format="png")
+        data = base64.b64encode(buffer.getvalue()).decode("ascii")
+        parts.append(f"<img class='plot' alt='frames of the night by setup and type, airmass "
+                     f"and seeing' src='data:image/png;base64,{data}'>")
+        parts.append("<p class='muted'>Bars: each frame from its start for its exposure time "
+                     "(at least 30 s wide), by setup; hatched red: rejected or ignored. Below: "
+                     "airmass and seeing (FWHM of the spatial profile of the brightest "
+                     "object) at mid-exposure.</p>")
+    types = Counter((str(r["frame_type"]), str(r["status"])) for r in night_log)
+    parts.append(_table(("frame type", "status", "files"),
+                        [[t, s, n] for (t, s), n in sorted(types.items())], numeric=(2,)))
+    parts.append("</section>")
+    return "\n".join(parts)
+
+
+def _coadd_section(out_dir, manifest):
+    rels = [str(r["path"]) for r in manifest if r["kind"] == "coadd_listing" and r["status"] == "ok"]
+    if not rels:
+        return ""
+    parts = ["<section id='coadds'><h2>Combined spectra</h2>"]
+    for rel in rels:
+        try:
+            table = Table.read(Path(out_dir) / rel, format="ascii.ecsv")
+        except Exception:  # noqa: BLE001
+            continue
+        cols = [c for c in table.colnames if table[c].ndim == 1]
+        rows = [[_link(str(Path(rel).parent / str(row[c])), str(row[c])) if c == "file"
+                 else format_value(row[c], c) for c in cols] for row in table]
+        parts.append(_table([label(c) for c in cols], rows))
+    figures = [str(r["path"]) for r in manifest if r["kind"] == "qa_figure" and r["status"] == "ok"
+               and "coadd" in Path(str(r["path"])).name]
+    parts.append(_thumbnails(figures))
+    parts.append("</section>")
+    return "\n".join(parts)
+
+
+def _caption(rel):
+    return Path(rel).stem.replace("_", " ")
+
+
+def _thumbnails(figures):
+    out = ["<div class='figs'>"]
+    for rel in figures:
+        out.append(f"<figure><a href='{_esc(rel)}'><img src='{_esc(rel)}' "
+                   f"alt='{_esc(_caption(rel))}'></a><figcaption>{_esc(_caption(rel))}"
+                   "</figcaption></figure>")
+    out.append("</div>")
+    return "\n".join(out)
+
+
+#: headings of the QA figures by what their names say (first match wins)
+_FIGURE_GROUPS = (("_wavelength_", "Wavelength solutions"), ("sensitivity_", "Sensitivity"),
+                  ("_fluxed", "Flux-calibrated spectra"), ("_rectified", "Rectified frames"),
+                  ("_spectra", "Extracted spectra"), ("coadd", "Combined spectra"))
+
+
+def _figures_section(manifest):
+    figures = sorted(str(r["path"]) for r in manifest if r["kind"] == "qa_figure"
+                     and r["status"] == "ok")
+    if not figures:
+        return ""
+    parts = ["<section id='figures'><h2>QA figures</h2><p class='muted'>Click a thumbnail for "
+             "the full figure.</p>"]
+    groups = {}
+    for rel in figures:
+        name = Path(rel).name
+        heading = next((h for key, h in _FIGURE_GROUPS if key in name), "Other figures")
+        groups.setdefault(heading, []).append(rel)
+    for heading in [h for _, h in _FIGURE_GROUPS] + ["Other figures"]:
+        if heading in groups:
+            parts.append(f"<h3>{_esc(heading)}</h3>" + _thumbnails(groups[heading]))
+    parts.append("</section>")
     return "\n".join(parts)
 
 
 def _read_table(path):
-    suffix = path.suffix.lower()
-    if suffix == ".ecsv":
+    if path.suffix.lower() == ".ecsv":
         return Table.read(path, format="ascii.ecsv")
-    if suffix == ".fits":
+    if path.suffix.lower() == ".fits":
         return Table.read(path, hdu=1)
-    if suffix == ".json":
-        import json
-        data = json.loads(path.read_text())
-        if isinstance(data, dict):
-            flat = {k: v for k, v in data.items() if not isinstance(v, (dict, list))}
-            return Table(rows=[list(flat.values())], names=list(flat))
     raise ValueError(f"{path}: not a table this report can show")
 
 
-def _table_section(out_dir, paths):
-    parts = []
-    for rel in paths:
-        try:
-            table = _read_table(out_dir / rel)
-        except Exception as exc:  # a broken QA file must not break the report
-            parts.append(f"<p><b>{html.escape(rel)}</b>: could not be read ({html.escape(str(exc))})</p>")
-            continue
-        meta = {k: v for k, v in table.meta.items() if not isinstance(v, (dict, list))}
-        parts.append(f"<h3>{html.escape(rel)}</h3>")
-        if meta:
-            meta_table = Table(rows=[[k, _fmt(v)] for k, v in meta.items()], names=("quantity", "value"),
-                               dtype=[str, str])
-            parts.append(_html_table(meta_table))
-        if len(table):
-            parts.append(_html_table(table))
+def _full_table(out_dir, rel):
+    try:
+        table = _read_table(Path(out_dir) / rel)
+    except Exception as exc:  # noqa: BLE001 - a broken QA file must not break the report
+        return f"<p><b>{_esc(rel)}</b>: could not be read ({_esc(exc)})</p>"
+    meta = {k: v for k, v in table.meta.items() if not isinstance(v, dict)}
+    description = str(meta.pop("description", ""))
+    parts = [f"<details><summary>{_esc(rel)} <span class='muted'>({len(table)} rows)</span>"
+             f"</summary><p class='muted'>{_esc(description)} <a href='{_esc(rel)}'>file</a></p>"]
+    if meta:
+        parts.append(_table(("quantity", "value"), [[label(k), format_value(v, k)]
+                                                    for k, v in meta.items()]))
+    cols = [c for c in table.colnames if table[c].ndim == 1]
+    if len(table) and cols:
+        shown = table[:_MAX_ROWS]
+        numeric = tuple(i for i, c in enumerate(cols) if table[c].dtype.kind in _NUMERIC)
+        parts.append(_table([label(c) for c in cols],
+                            [[format_value(row[c], c) for c in cols] for row in shown],
+                            numeric=numeric))
+        if len(table) > _MAX_ROWS:
+            parts.append(f"<p class='muted'>… {len(table) - _MAX_ROWS} more rows in the file.</p>")
+    parts.append("</details>")
     return "\n".join(parts)
 
 
-def _glance_section(out_dir, manifest):
-    parts = []
-    paths = [str(r["path"]) for r in manifest if r["status"] == "ok"]
-    for folder, prefix, suffix, title, keys in _GLANCE:
-        rows = []
-        for rel in paths:
-            name = Path(rel).name
-            if not (Path(rel).parent.as_posix() == folder and name.startswith(prefix)
-                    and name.endswith(suffix)):
-                continue
-            try:
-                meta = Table.read(out_dir / rel, format="ascii.ecsv").meta
-            except Exception:
-                continue
-            present = [k for k in keys if k in meta]
-            if present:
-                rows.append((name, {k: meta[k] for k in present}))
-        if not rows:
-            continue
-        cols = [k for k in keys if any(k in r[1] for r in rows)]
-        table = Table(rows=[[name] + [_fmt(m.get(k, "")) for k in cols] for name, m in rows],
-                      names=["file"] + cols, dtype=[str] * (len(cols) + 1))
-
-        def flag(row):
-            text = " ".join(str(row[c]) for c in table.colnames)
-            return "bad" if ("False" in text or "failed" in text) else ""
-
-        parts.append(f"<h3>{html.escape(title)}</h3>" + _html_table(table, row_class=flag))
-    if not parts:
-        return ""
-    return "<h2>At a glance</h2>" + "\n".join(parts)
+def _tables_section(out_dir, manifest):
+    parts = ["<section id='tables'><h2>Full tables</h2>"]
+    for kind, heading in _FULL_TABLES:
+        rels = [str(r["path"]) for r in manifest if r["kind"] == kind and r["status"] == "ok"
+                and Path(str(r["path"])).suffix.lower() == ".ecsv"]
+        if rels:
+            parts.append(f"<h3>{_esc(heading)}</h3>")
+            parts.extend(_full_table(out_dir, rel) for rel in rels)
+    parts.append("</section>")
+    return "\n".join(parts)
 
 
-def render_night_report(out_dir, manifest, night_log, *, title="Night report"):
+def _products_section(manifest):
+    kinds = Counter(str(k) for k in manifest["kind"]) if len(manifest) else Counter()
+    return ("<section id='products'><h2>Products</h2>"
+            + _table(("kind", "files"), [[k, n] for k, n in sorted(kinds.items())], numeric=(1,))
+            + "<p>Every product with its source frames: <a href='manifest.ecsv'>manifest.ecsv</a>;"
+              " one log per job under <code>logs/</code>.</p></section>")
+
+
+def render_night_report(out_dir, manifest, night_log, *, title="Night report", limits=None,
+                        spatial_scale_arcsec_per_px=None):
     """Return the report as an HTML string.
 
     Parameters
@@ -170,63 +357,50 @@ def render_night_report(out_dir, manifest, night_log, *, title="Night report"):
         As written by :mod:`pipeline.products.manifest`.
     night_log : astropy.table.Table
         As written by :mod:`pipeline.night.inventory`.
+    limits : dict, optional
+        The configured limits the calibrations are marked against (see
+        :func:`pipeline.products.collect.setup_summaries`).
+    spatial_scale_arcsec_per_px : float, optional
+        Unbinned pixel scale along the slit, for the seeing in the night plot.
     """
     out_dir = Path(out_dir)
     now = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    summaries = setup_summaries(out_dir, manifest, night_log, limits=limits)
+    messages = job_messages(out_dir)
     status = Counter(str(s) for s in manifest["status"]) if len(manifest) else Counter()
-    types = Counter((str(r["frame_type"]), str(r["status"])) for r in night_log)
-    body = [f"<h1>{html.escape(title)}</h1>",
-            f"<p class='summary'>Written {now} by longslit-pipeline {__version__}. "
-            f"{len(night_log)} raw files; {status.get('ok', 0)} products written, "
-            f"{status.get('missing', 0)} missing.</p>"]
-
-    body.append(_glance_section(out_dir, manifest))
-    body.append("<h2>Night log</h2>")
-    counts = Table(rows=[[t, s, n] for (t, s), n in sorted(types.items())] or None,
-                   names=("frame type", "status", "files"), dtype=[str, str, int])
-    body.append(_html_table(counts))
-    problems = night_log[[str(s) != "ok" for s in night_log["status"]]]
-    if len(problems):
-        body.append("<p>Frames not reduced, and why:</p>")
-        cols = [c for c in ("frame_id", "frame_type", "status", "reason") if c in problems.colnames]
-        body.append(_html_table(problems[cols], row_class=lambda r: "bad" if r["status"] == "rejected"
-                                else "warn"))
-
-    missing = manifest[manifest["status"] == "missing"] if len(manifest) else manifest
-    if len(missing):
-        body.append("<h2>Missing products</h2>")
-        body.append(_html_table(missing["kind", "path", "note"], row_class=lambda r: "bad"))
-
-    figures = [str(r["path"]) for r in manifest if r["kind"] == "qa_figure" and r["status"] == "ok"]
-    if figures:
-        body.append("<h2>QA figures</h2><div class='figs'>")
-        for rel in figures:
-            name = html.escape(rel)
-            body.append(f"<figure><a href='{name}'><img src='{name}' alt='{name}'></a>"
-                        f"<figcaption>{name}</figcaption></figure>")
-        body.append("</div>")
-
-    for kind in _QA_KINDS:
-        rels = [str(r["path"]) for r in manifest if r["kind"] == kind and r["status"] == "ok"
-                and Path(str(r["path"])).suffix.lower() in (".ecsv", ".json")]
-        if rels:
-            body.append(f"<h2>{_SECTION_TITLES[kind]} (all numbers)</h2>")
-            body.append(_table_section(out_dir, rels))
-
-    body.append("<h2>Products</h2>")
-    kinds = Counter(str(k) for k in manifest["kind"]) if len(manifest) else Counter()
-    body.append(_html_table(Table(rows=[[k, n] for k, n in sorted(kinds.items())] or None,
-                                  names=("kind", "files"), dtype=[str, int])))
-    body.append("<p>Every product with its source frames: <a href='manifest.ecsv'>manifest.ecsv</a>; "
-                "per-job logs under <code>logs/</code>.</p>")
-    return ("<!DOCTYPE html><html><head><meta charset='utf-8'>"
-            f"<title>{html.escape(title)}</title><style>{_STYLE}</style></head><body>"
-            + "\n".join(body) + "</body></html>")
+    n_rejected = sum(str(r["status"]) == "rejected" for r in night_log)
+    n_warnings = sum(m.origin == "pipeline" and m.level == "warning" for m in messages)
+    overall = worst([s.mark for s in summaries]
+                    + [Mark.FAIL if status.get("missing", 0) else Mark.PASS]
+                    + [Mark.WARN if (n_rejected or n_warnings) else Mark.PASS])
+    n_fallbacks = len(fallbacks(out_dir))
+    lead = (f"{_mark(overall)} {len(night_log)} raw files, {n_rejected} rejected; "
+            f"{status.get('ok', 0)} products written, {status.get('missing', 0)} missing; "
+            f"{n_warnings} warnings from the steps; {n_fallbacks} calibration fallbacks.")
+    body = [f"<h1>{_esc(title)}</h1>", f"<p class='lead'>{lead}</p>",
+            f"<p class='muted'>Written {now} by longslit-pipeline {_esc(__version__)}. Marks: "
+            "pass within the configured limit, warn near it (or a fallback, or a check that "
+            "kept the configured value), fail beyond it or missing.</p>",
+            _calibration_section(summaries),
+            _problems_section(out_dir, manifest, night_log, messages),
+            _night_section(out_dir, manifest, night_log, title="",
+                           spatial_scale_arcsec_per_px=spatial_scale_arcsec_per_px),
+            _coadd_section(out_dir, manifest),
+            _figures_section(manifest),
+            _tables_section(out_dir, manifest),
+            _products_section(manifest)]
+    return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+            "<meta name='viewport' content='width=device-width, initial-scale=1'>"
+            "<link rel='icon' href='data:,'>"
+            f"<title>{_esc(title)}</title><style>{_STYLE}</style></head><body>"
+            + "\n".join(b for b in body if b) + "</body></html>")
 
 
-def write_night_report_file(*, manifest, night_log, report, out_dir, title="Night report"):
+def write_night_report_file(*, manifest, night_log, report, out_dir, title="Night report",
+                            limits=None, spatial_scale_arcsec_per_px=None):
     """Adapter: write the HTML report for ``out_dir`` from its manifest and night log."""
     manifest_table = Table.read(manifest, format="ascii.ecsv")
     log_table = Table.read(night_log, format="ascii.ecsv")
-    text = render_night_report(out_dir, manifest_table, log_table, title=title)
+    text = render_night_report(out_dir, manifest_table, log_table, title=title, limits=limits,
+                               spatial_scale_arcsec_per_px=spatial_scale_arcsec_per_px)
     Path(report).write_text(text, encoding="utf-8")
