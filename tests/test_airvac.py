@@ -12,16 +12,12 @@ from specutils.utils import wcs_utils
 from pipeline.core.airvac import (FORMULAS, air_to_vacuum, convert_wavelengths,
                                   refractive_index, vacuum_to_air)
 
-_REFERENCE = Path(__file__).resolve().parents[2] / "shared" / "reference" / \
-    "air_refraction_checks.csv"
+# published and computed check values, with sources: tests/reference/README.md
+_REFERENCE = Path(__file__).resolve().parent / "reference" / "air_refraction_checks.csv"
 
 
 def _reference_rows():
-    candidates = [_REFERENCE, Path("/work/shared/reference/air_refraction_checks.csv")]
-    path = next((p for p in candidates if p.exists()), None)
-    if path is None:
-        pytest.skip(f"shared reference table not found at {_REFERENCE}")
-    with open(path, newline="") as handle:
+    with open(_REFERENCE, newline="") as handle:
         lines = [line for line in handle if not line.startswith("#")]
     return list(csv.DictReader(lines))
 

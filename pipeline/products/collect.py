@@ -23,7 +23,7 @@ from pathlib import Path
 
 from astropy.table import Table
 
-from pipeline.products.labels import (Mark, format_value, mark_flag, mark_tolerance,
+from pipeline.products.labels import (Mark, as_text, format_value, mark_flag, mark_tolerance,
                                       mark_upper_limit, worst)
 
 __all__ = ["CheckResult", "SetupSummary", "JobMessage", "setup_summaries", "job_messages",
@@ -108,13 +108,13 @@ def setup_summaries(out_dir, manifest, night_log, *, limits=None):
     limits = dict(limits or {})
     missing = _missing(manifest)
     choices = fallbacks(out_dir)
-    rows = [r for r in night_log if str(r["status"]) == "ok" and str(r["setup"])
-            and str(r["frame_type"]) in ("arc", "standard", "science")]
-    setups = list(dict.fromkeys(str(r["setup"]) for r in rows))
+    rows = [r for r in night_log if as_text(r["status"]) == "ok" and as_text(r["setup"])
+            and as_text(r["frame_type"]) in ("arc", "standard", "science")]
+    setups = list(dict.fromkeys(as_text(r["setup"]) for r in rows))
     summaries = []
     for setup in setups:
-        mine = [r for r in rows if str(r["setup"]) == setup]
-        readouts = sorted({str(r["readout"]) for r in mine if "readout" in r.colnames})
+        mine = [r for r in rows if as_text(r["setup"]) == setup]
+        readouts = sorted({as_text(r["readout"]) for r in mine if "readout" in r.colnames} - {""})
         checks = []
         for readout in readouts:
             checks.append(_bias_check(out_dir, readout, missing, limits))
@@ -203,9 +203,12 @@ def _flux_check(out_dir, setup, manifest, limits):
     status = str(meta.get("status", "ok"))
     max_rms = limits.get("sensitivity_max_rms_percent")
     rms = meta.get("rms_binned_percent", meta.get("rms_percent"))
-    which = "in 50-Å bins" if "rms_binned_percent" in meta else "per pixel"
     mark = Mark.FAIL if status not in ("ok", "fitted") else mark_upper_limit(rms, max_rms)
-    value = f"residual {format_value(rms)} % ({which})"
+    value = f"residual rms {format_value(meta.get('rms_percent'))} % per pixel"
+    if "rms_binned_percent" in meta:
+        width = meta.get("bin_width_angstrom")
+        bins = f"{format_value(width)}-Å bins" if width is not None else "wavelength bins"
+        value += f", {format_value(meta['rms_binned_percent'])} % in {bins} (marked)"
     limit = f"≤ {format_value(max_rms)} %" if max_rms is not None else ""
     return CheckResult("flux calibration", "sensitivity", value, limit, mark,
                        str(meta.get("reason", "")) if status not in ("ok", "fitted") else "", rel)

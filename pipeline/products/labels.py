@@ -11,7 +11,7 @@ import re
 
 import numpy as np
 
-__all__ = ["label", "format_value", "Mark", "mark_upper_limit", "mark_tolerance", "mark_flag",
+__all__ = ["as_text", "label", "format_value", "Mark", "mark_upper_limit", "mark_tolerance", "mark_flag",
            "worst"]
 
 #: labels of the keys whose plain reading would mislead or is too terse
@@ -25,7 +25,7 @@ _LABELS = {
     "rms_px": "rms (px)",
     "rms_km_s": "rms (km/s)",
     "rms_percent": "rms of the fit (%)",
-    "rms_binned_percent": "rms in 50-Å bins (%)",
+    "rms_binned_percent": "rms in wavelength bins (%)",
     "read_noise_e_configured_gain": "read noise (e⁻, configured gain)",
     "read_noise_configured_e": "read noise configured (e⁻)",
     "read_noise_e_measured_gain": "read noise (e⁻, measured gain)",
@@ -61,6 +61,20 @@ _UNITS = (
     ("_adu", "ADU"), ("_deg", "°"), ("_mm", "mm"), ("_px", "px"), ("_e2", "e⁻²"),
     ("_e", "e⁻"), ("_s", "s"), ("_mag", "mag"),
 )
+
+
+def as_text(value):
+    """A table cell as text; a masked cell (an empty string read back from ECSV) is ''.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> as_text(np.ma.masked), as_text("G600")
+    ('', 'G600')
+    """
+    if value is None or value is np.ma.masked:
+        return ""
+    return str(value)
 
 
 def label(key):

@@ -64,6 +64,8 @@ def night_timeline(night_log, *, seeing_arcsec=None):
     >>> night_timeline(log, seeing_arcsec={"a": 1.1})[0].seeing_arcsec
     1.1
     """
+    from pipeline.products.labels import as_text
+
     seeing_arcsec = seeing_arcsec or {}
     rows = []
     for rec in night_log:
@@ -72,8 +74,8 @@ def night_timeline(night_log, *, seeing_arcsec=None):
             continue
         frame_id = str(rec["frame_id"])
         exptime = _float(rec["exptime_s"]) if "exptime_s" in rec.colnames else math.nan
-        rows.append(TimelineRow(frame_id, str(rec["frame_type"]), str(rec["setup"]), start,
-                                exptime if math.isfinite(exptime) else 0.0, str(rec["status"]),
+        rows.append(TimelineRow(frame_id, as_text(rec["frame_type"]), as_text(rec["setup"]), start,
+                                exptime if math.isfinite(exptime) else 0.0, as_text(rec["status"]),
                                 _float(rec["airmass"]) if "airmass" in rec.colnames else math.nan,
                                 _float(seeing_arcsec.get(frame_id, math.nan))))
     return sorted(rows, key=lambda r: r.start)
@@ -90,10 +92,10 @@ def plot_night(rows, *, title=""):
 
     fig = Figure(figsize=(11, 4.6), dpi=90, layout="constrained")
     top, bottom = fig.subplots(2, 1, sharex=True, height_ratios=(3, 2))
-    lanes = list(dict.fromkeys(r.setup or "(no setup)" for r in rows))
-    lanes = sorted(lanes, key=lambda s: (s == "(no setup)", s))
+    lanes = list(dict.fromkeys(r.setup or "no setup (biases)" for r in rows))
+    lanes = sorted(lanes, key=lambda s: (s == "no setup (biases)", s))
     for row in rows:
-        lane = lanes.index(row.setup or "(no setup)")
+        lane = lanes.index(row.setup or "no setup (biases)")
         width = timedelta(seconds=max(row.exptime_s, 30.0))   # short frames stay visible
         colour = TYPE_COLOURS.get(row.frame_type, "#555555")
         good = row.status == "ok"

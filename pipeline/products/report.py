@@ -26,7 +26,7 @@ from astropy.table import Table
 
 from pipeline import __version__
 from pipeline.products.collect import fallbacks, job_messages, read_meta, setup_summaries
-from pipeline.products.labels import Mark, format_value, label, worst
+from pipeline.products.labels import Mark, as_text, format_value, label, worst
 
 __all__ = ["render_night_report", "write_night_report_file"]
 
@@ -145,8 +145,8 @@ def _problems_section(out_dir, manifest, night_log, messages):
     if bad:
         parts.append("<h3>Frames not reduced</h3>")
         parts.append(_table(("frame", "type", "status", "object", "reason"),
-                            [[r["frame_id"], r["frame_type"], r["status"], r["object"], r["reason"]]
-                             for r in bad],
+                            [[as_text(r[c]) for c in ("frame_id", "frame_type", "status",
+                                                       "object", "reason")] for r in bad],
                             row_marks=[Mark.FAIL if str(r["status"]) == "rejected" else ""
                                        for r in bad]))
     missing = [r for r in manifest if r["status"] == "missing"]
@@ -188,13 +188,13 @@ def _problems_section(out_dir, manifest, night_log, messages):
 
 
 def _seeing(out_dir, manifest, spatial_scale_arcsec_per_px):
-    """Frame id -> FWHM (arcsec) of the own-traced aperture 1 (spectrum headers)."""
+    """Frame id -> FWHM (arcsec) of the narrowest object traced on its own on that frame
+    (spectrum headers APFWHMPX, BINSPAT): the seeing for a star, an upper limit for a galaxy."""
     seeing = {}
     if not spatial_scale_arcsec_per_px:
         return seeing
     for r in manifest:
-        if r["kind"] != "spectrum_1d" or r["status"] != "ok" or not str(r["path"]).endswith(
-                "_ap1.fits"):
+        if r["kind"] != "spectrum_1d" or r["status"] != "ok":
             continue
         try:
             header = fits.getheader(Path(out_dir) / str(r["path"]))
@@ -203,8 +203,9 @@ def _seeing(out_dir, manifest, spatial_scale_arcsec_per_px):
         if str(header.get("TRCMODE", "own")) != "own" or "APFWHMPX" not in header:
             continue
         frame = str(header.get("FRAMEID", Path(str(r["path"])).parent.name))
-        seeing[frame] = (float(header["APFWHMPX"]) * float(spatial_scale_arcsec_per_px)
-                         * float(header.get("BINSPAT", 1)))
+        fwhm = (float(header["APFWHMPX"]) * float(spatial_scale_arcsec_per_px)
+                * float(header.get("BINSPAT", 1)))
+        seeing[frame] = min(fwhm, seeing.get(frame, fwhm))
     return seeing
 
 
@@ -223,9 +224,9 @@ def _night_section(out_dir, manifest, night_log, *, spatial_scale_arcsec_per_px,
                      f"and seeing' src='data:image/png;base64,{data}'>")
         parts.append("<p class='muted'>Bars: each frame from its start for its exposure time "
                      "(at least 30 s wide), by setup; hatched red: rejected or ignored. Below: "
-                     "airmass and seeing (FWHM of the spatial profile of the brightest "
-                     "object) at mid-exposure.</p>")
-    types = Counter((str(r["frame_type"]), str(r["status"])) for r in night_log)
+                     "airmass and seeing (FWHM along the slit of the narrowest object "
+                     "traced on the frame: an upper limit when all are extended) at mid-exposure.</p>")
+    types = Counter((as_text(r["frame_type"]), as_text(r["status"])) for r in night_log)
     parts.append(_table(("frame type", "status", "files"),
                         [[t, s, n] for (t, s), n in sorted(types.items())], numeric=(2,)))
     parts.append("</section>")
