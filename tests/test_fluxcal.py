@@ -1,4 +1,4 @@
-"""Tests of pipeline.fluxcal.sensitivity and pipeline.fluxcal.extinction against independent truth.
+"""Tests of the flux-calibration package (pipeline.fluxcal) against independent truth.
 
 Truths used here:
 * analytic integrals of functions tabulated in the tests;
@@ -13,6 +13,7 @@ Simulator-truth tests (demo_data) are at the end and skip until the simulator sh
 import csv
 import math
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -24,9 +25,11 @@ from astropy.wcs import WCS
 from numpy.testing import assert_allclose
 from scipy.ndimage import gaussian_filter1d
 
+from pipeline.core.errors import FluxCalibrationError, FluxCalibrationWarning, InputFileError
+from pipeline.fluxcal import calibrate, inputs, pixels, products, slitloss, standards, steps
 from pipeline.fluxcal import extinction as ext
-from pipeline.fluxcal import sensitivity as fc
-from pipeline.core.errors import FluxCalibrationWarning, InputFileError
+from pipeline.fluxcal import sensitivity as sens
+from pipeline.fluxcal import telluric as tell
 from pipeline.core.maskbits import MaskBit
 
 # Balmer lines of the synthetic hot standard (air, Angstrom; values from memory, only used to
@@ -67,13 +70,13 @@ def hot_star_table(step=1.0):
     flux = bb / np.interp(5500.0, tw, bb) * 2e-13
     for centre in BALMER:
         flux = flux * (1 - 0.5 * np.exp(-0.5 * ((tw - centre) / 12.0) ** 2))
-    return fc.FluxTable(tw, flux, name="TST-1", source="synthetic")
+    return standards.FluxTable(tw, flux, name="TST-1", source="synthetic")
 
 
 def observe(wave, flux_in_pixels, *, exptime_s, airmass, k_of_wave, rng, read_var=16.0,
             lsf_sigma_px=1.0):
     """Counts of a source seen through the known sensitivity and the atmosphere."""
-    dwave = np.diff(fc.pixel_edges(wave))
+    dwave = np.diff(pixels.pixel_edges(wave))
     seen = gaussian_filter1d(flux_in_pixels, lsf_sigma_px) if lsf_sigma_px else flux_in_pixels
     mean = (exptime_s * dwave * 10 ** (0.4 * true_sens_mag(wave)) * seen
             * 10 ** (-0.4 * k_of_wave(wave) * airmass))
@@ -111,10 +114,10 @@ WAVE = np.linspace(3900.0, 6100.0, 1101)  # 2.0 A pixels
 
 def test_pixel_edges_linear_and_nonlinear():
     wave = np.array([1.0, 2.0, 4.0, 7.0])
-    edges = fc.pixel_edges(wave)
+    edges = pixels.pixel_edges(wave)
     assert_allclose(edges, [0.5, 1.5, 3.0, 5.5, 8.5])  # midpoints; ends half an interval out
     with pytest.raises(ValueError, match="wave_angstrom"):
-        fc.pixel_edges([3.0, 2.0, 1.0])
+        pixels.pixel_edges([3.0, 2.0, 1.0])
 
 
 def test_linear_table_gives_exact_pixel_means():
@@ -122,21 +125,21 @@ def test_linear_table_gives_exact_pixel_means():
     # so the mean over any pixel is f(pixel centre) (analytic).
     rng = np.random.default_rng(3)
     nodes = np.sort(np.concatenate([[4000.0, 5000.0], rng.uniform(4000.0, 5000.0, 37)]))
-    table = fc.FluxTable(nodes, 2 + 0.01 * nodes)
+    table = standards.FluxTable(nodes, 2 + 0.01 * nodes)
     edges = np.linspace(4010.0, 4990.0, 338)
-    mean = fc.table_flux_in_pixels(table, edges)
+    mean = standards.table_flux_in_pixels(table, edges)
     assert_allclose(mean, 2 + 0.01 * 0.5 * (edges[1:] + edges[:-1]), rtol=1e-12)
 
 
 def test_quadratic_table_matches_analytic_integral():
     # f = (lambda/1000)^2 tabulated every 0.5 A; pixel mean = (b^3 - a^3) / (3 (b - a)) / 1e6.
     nodes = np.arange(3000.0, 7000.5, 0.5)
-    table = fc.FluxTable(nodes, (nodes / 1000.0) ** 2)
+    table = standards.FluxTable(nodes, (nodes / 1000.0) ** 2)
     edges = np.linspace(3100.3, 6900.7, 1234)
     a, b = edges[:-1], edges[1:]
     truth = (b ** 3 - a ** 3) / (3 * (b - a)) / 1e6
     # piecewise-linear error <= h^2 f''/12 = 0.25 * 2e-6 / 12 (analytic bound)
-    assert_allclose(fc.table_flux_in_pixels(table, edges), truth, atol=5e-8)
+    assert_allclose(standards.table_flux_in_pixels(table, edges), truth, atol=5e-8)
 
 
 def test_narrow_line_keeps_its_equivalent_width():
@@ -145,9 +148,9 @@ def test_narrow_line_keeps_its_equivalent_width():
     # keeps it: EW = depth * sigma * sqrt(2 pi) (analytic).
     nodes = np.arange(4900.0, 5100.0, 0.1)
     flux = 1 - 0.6 * np.exp(-0.5 * ((nodes - 5001.3) / 1.5) ** 2)
-    table = fc.FluxTable(nodes, flux)
+    table = standards.FluxTable(nodes, flux)
     edges = np.arange(4950.0, 5050.1, 4.0)
-    mean = fc.table_flux_in_pixels(table, edges)
+    mean = standards.table_flux_in_pixels(table, edges)
     ew_truth = 0.6 * 1.5 * math.sqrt(2 * math.pi)
     assert np.sum((1 - mean) * np.diff(edges)) == pytest.approx(ew_truth, rel=1e-4)
     centres = 0.5 * (edges[1:] + edges[:-1])
@@ -157,15 +160,15 @@ def test_narrow_line_keeps_its_equivalent_width():
 
 def test_binned_table_is_a_step_function():
     # bins [4000,4010) = 1, [4010,4020) = 3; a pixel 4005-4015 averages to 2; outside -> NaN
-    table = fc.FluxTable([4005.0, 4015.0], [1.0, 3.0], bin_width_angstrom=[10.0, 10.0])
-    mean = fc.table_flux_in_pixels(table, [3995.0, 4005.0, 4015.0, 4018.0, 4025.0])
+    table = standards.FluxTable([4005.0, 4015.0], [1.0, 3.0], bin_width_angstrom=[10.0, 10.0])
+    mean = standards.table_flux_in_pixels(table, [3995.0, 4005.0, 4015.0, 4018.0, 4025.0])
     assert np.isnan(mean[0]) and np.isnan(mean[3])
     assert_allclose(mean[1:3], [2.0, 3.0])
 
 
 def test_pixels_outside_a_point_table_are_nan():
-    table = fc.FluxTable([4000.0, 5000.0], [1.0, 1.0])
-    mean = fc.table_flux_in_pixels(table, [3990.0, 4000.0, 4500.0, 5000.0, 5010.0])
+    table = standards.FluxTable([4000.0, 5000.0], [1.0, 1.0])
+    mean = standards.table_flux_in_pixels(table, [3990.0, 4000.0, 4500.0, 5000.0, 5010.0])
     assert np.isnan(mean[0]) and np.isnan(mean[-1]) and np.all(mean[1:3] == 1.0)
 
 
@@ -193,11 +196,11 @@ def test_calibration_removes_tug77_extinction(site_curve):
     # The same source seen at airmass 1.0 and 2.2: the calibrated fluxes must agree, and the
     # raw count ratio must be 10^(-0.4 k X-difference) with k from TUG77 (4000 A: 0.30).
     wave = np.linspace(3950.0, 4050.0, 51)
-    fit = fc.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
+    fit = sens.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
                             np.array([3900.0, 4100.0]), 3900.0, 4100.0)
     k = np.interp(wave, [3900, 4000, 4100], [0.33, 0.30, 0.27])  # TUG77 rows
     counts = {x: 1e5 * 10 ** (-0.4 * k * x) for x in (1.0, 2.2)}
-    out = {x: fc.calibrate_spectrum(wave, counts[x], counts[x], exptime_s=10.0, airmass=x,
+    out = {x: calibrate.calibrate_spectrum(wave, counts[x], counts[x], exptime_s=10.0, airmass=x,
                                     sensitivity=fit, extinction=site_curve) for x in counts}
     assert_allclose(out[1.0].flux, out[2.2].flux, rtol=1e-12)
     assert counts[2.2][25] / counts[1.0][25] == pytest.approx(10 ** (-0.4 * 0.30 * 1.2))
@@ -235,7 +238,7 @@ def test_effective_airmass_at_transit_is_sec_of_zenith_distance():
 def standard_obs(tug77):
     rng = np.random.default_rng(20261201)
     table = hot_star_table()
-    flux_pix = fc.table_flux_in_pixels(table, fc.pixel_edges(WAVE))
+    flux_pix = standards.table_flux_in_pixels(table, pixels.pixel_edges(WAVE))
     counts, var = observe(WAVE, flux_pix, exptime_s=120.0, airmass=1.4,
                           k_of_wave=tug77_interp(tug77), rng=rng)
     return table, counts, var
@@ -243,10 +246,10 @@ def standard_obs(tug77):
 
 def test_sensitivity_recovered_through_tug77_extinction(standard_obs, site_curve):
     table, counts, var = standard_obs
-    pts = fc.measure_sensitivity(WAVE, counts, var, exptime_s=120.0, airmass=1.4,
+    pts = sens.measure_sensitivity(WAVE, counts, var, exptime_s=120.0, airmass=1.4,
                                  flux_table=table, extinction=site_curve,
                                  exclude_regions=REGIONS)
-    fit = fc.fit_sensitivity(pts)
+    fit = sens.fit_sensitivity(pts)
     truth = 10 ** (0.4 * true_sens_mag(WAVE))
     ratio = fit.sensitivity(WAVE) / truth - 1
     # stated target: known sensitivity back to 0.3 % at every pixel (measured ~0.05 %)
@@ -261,9 +264,9 @@ def test_ignoring_extinction_biases_the_sensitivity(standard_obs):
     # Without the extinction correction the fit must be off by 10^(-0.4 k X), k(4000)=0.30
     # (TUG77), X=1.4: 32 % - shows the check above can fail.
     table, counts, var = standard_obs
-    pts = fc.measure_sensitivity(WAVE, counts, var, exptime_s=120.0, airmass=1.4,
+    pts = sens.measure_sensitivity(WAVE, counts, var, exptime_s=120.0, airmass=1.4,
                                  flux_table=table, extinction=None, exclude_regions=REGIONS)
-    fit = fc.fit_sensitivity(pts)
+    fit = sens.fit_sensitivity(pts)
     ratio = fit.sensitivity(np.array([4000.0]))[0] / 10 ** (0.4 * true_sens_mag(4000.0))
     assert ratio == pytest.approx(10 ** (-0.4 * 0.30 * 1.4), rel=3e-3)
 
@@ -274,10 +277,10 @@ def test_outliers_rejected_and_chebyshev_alternative(standard_obs, site_curve):
     bad = counts.copy()
     bad[hits] *= 1.3  # unmasked cosmic-ray-like spikes
     for kind, degree in (("spline", 3), ("chebyshev", 12)):
-        pts = fc.measure_sensitivity(WAVE, bad, var, exptime_s=120.0, airmass=1.4,
+        pts = sens.measure_sensitivity(WAVE, bad, var, exptime_s=120.0, airmass=1.4,
                                      flux_table=table, extinction=site_curve,
                                      exclude_regions=REGIONS)
-        fit = fc.fit_sensitivity(pts, kind=kind, degree=degree)
+        fit = sens.fit_sensitivity(pts, kind=kind, degree=degree)
         rejected = fit.info["rejected"][0]
         assert np.all(rejected[hits[pts.for_fit[hits]]])
         truth = 10 ** (0.4 * true_sens_mag(WAVE))
@@ -288,44 +291,44 @@ def test_masked_and_excluded_pixels_do_not_enter(standard_obs, site_curve):
     table, counts, var = standard_obs
     mask = np.zeros(WAVE.size, np.uint8)
     mask[100:140] = MaskBit.SATURATED
-    pts = fc.measure_sensitivity(WAVE, counts * np.where(mask, 5.0, 1.0), var, mask,
+    pts = sens.measure_sensitivity(WAVE, counts * np.where(mask, 5.0, 1.0), var, mask,
                                  exptime_s=120.0, airmass=1.4, flux_table=table,
                                  extinction=site_curve, exclude_regions=REGIONS)
     assert not pts.for_fit[100:140].any()
     assert not pts.for_fit[np.abs(WAVE - 4861.33) < 39].any()
-    fit = fc.fit_sensitivity(pts)
+    fit = sens.fit_sensitivity(pts)
     assert np.max(np.abs(fit.sensitivity(WAVE) / 10 ** (0.4 * true_sens_mag(WAVE)) - 1)) < 3e-3
 
 
 def test_two_standards_at_different_airmass(standard_obs, site_curve, tug77):
     rng = np.random.default_rng(7)
     table = standard_obs[0]
-    flux_pix = fc.table_flux_in_pixels(table, fc.pixel_edges(WAVE))
+    flux_pix = standards.table_flux_in_pixels(table, pixels.pixel_edges(WAVE))
     pts = []
     for i, airmass in enumerate((1.1, 2.0)):
         counts, var = observe(WAVE, flux_pix, exptime_s=60.0, airmass=airmass,
                               k_of_wave=tug77_interp(tug77), rng=rng)
-        pts.append(fc.measure_sensitivity(WAVE, counts, var, exptime_s=60.0, airmass=airmass,
+        pts.append(sens.measure_sensitivity(WAVE, counts, var, exptime_s=60.0, airmass=airmass,
                                           flux_table=table, extinction=site_curve,
                                           exclude_regions=REGIONS, info={"frame": f"s{i}"}))
-    fit = fc.fit_sensitivity(pts)
+    fit = sens.fit_sensitivity(pts)
     assert np.max(np.abs(fit.sensitivity(WAVE) / 10 ** (0.4 * true_sens_mag(WAVE)) - 1)) < 3e-3
     offsets = [d["offset_percent"] for d in fit.info["per_standard"]]
     assert max(abs(o) for o in offsets) < 0.1
 
 
 def test_too_few_points_raise():
-    table = fc.FluxTable([4000.0, 5000.0], [1e-13, 1e-13])
+    table = standards.FluxTable([4000.0, 5000.0], [1e-13, 1e-13])
     wave = np.linspace(4100.0, 4900.0, 6)
-    pts = fc.measure_sensitivity(wave, np.full(6, 1e5), np.full(6, 1e5), exptime_s=1.0,
+    pts = sens.measure_sensitivity(wave, np.full(6, 1e5), np.full(6, 1e5), exptime_s=1.0,
                                  airmass=1.0, flux_table=table)
-    with pytest.raises(fc.FluxCalibrationError, match="usable"):
-        fc.fit_sensitivity(pts)
+    with pytest.raises(FluxCalibrationError, match="usable"):
+        sens.fit_sensitivity(pts)
     with pytest.raises(ValueError, match="airmass"):
-        fc.measure_sensitivity(wave, np.ones(6), np.ones(6), exptime_s=1.0, airmass=0.5,
+        sens.measure_sensitivity(wave, np.ones(6), np.ones(6), exptime_s=1.0, airmass=0.5,
                                flux_table=table)
     with pytest.raises(ValueError, match="counts_e"):
-        fc.measure_sensitivity(wave, np.ones(5), np.ones(6), exptime_s=1.0, airmass=1.0,
+        sens.measure_sensitivity(wave, np.ones(5), np.ones(6), exptime_s=1.0, airmass=1.0,
                                flux_table=table)
 
 
@@ -333,7 +336,7 @@ def test_too_few_points_raise():
 
 def test_science_source_recovered_in_physical_units(standard_obs, site_curve, tug77):
     table, counts, var = standard_obs
-    fit = fc.fit_sensitivity(fc.measure_sensitivity(
+    fit = sens.fit_sensitivity(sens.measure_sensitivity(
         WAVE, counts, var, exptime_s=120.0, airmass=1.4, flux_table=table,
         extinction=site_curve, exclude_regions=REGIONS))
     rng = np.random.default_rng(11)
@@ -343,7 +346,7 @@ def test_science_source_recovered_in_physical_units(standard_obs, site_curve, tu
                                   lsf_sigma_px=0)
     mask = np.zeros(WAVE.size, np.uint8)
     mask[500] = MaskBit.COSMIC_RAY
-    cal = fc.calibrate_spectrum(WAVE, sci_counts, sci_var, mask, exptime_s=900.0, airmass=1.9,
+    cal = calibrate.calibrate_spectrum(WAVE, sci_counts, sci_var, mask, exptime_s=900.0, airmass=1.9,
                                 sensitivity=fit, extinction=site_curve)
     good = cal.mask == 0
     pull = (cal.flux - truth)[good] / np.sqrt(cal.variance[good])
@@ -359,10 +362,10 @@ def test_science_source_recovered_in_physical_units(standard_obs, site_curve, tu
 
 
 def test_outside_sensitivity_range_is_flagged():
-    fit = fc.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
+    fit = sens.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
                             np.array([4000.0, 5000.0]), 4000.0, 5000.0)
     wave = np.linspace(3990.0, 5010.0, 103)
-    cal = fc.calibrate_spectrum(wave, np.ones(103), np.ones(103), exptime_s=1.0, airmass=1.0,
+    cal = calibrate.calibrate_spectrum(wave, np.ones(103), np.ones(103), exptime_s=1.0, airmass=1.0,
                                 sensitivity=fit)
     outside = (wave < 4000.0) | (wave > 5000.0)
     assert np.all(cal.mask[outside] & MaskBit.NO_COVERAGE)
@@ -402,7 +405,7 @@ def test_adapters_write_specutils_readable_calibrated_spectra(night_files):
 
     f = night_files
     out = f["tmp"] / "out"
-    fc.fit_sensitivity_file(
+    steps.fit_sensitivity_file(
         spectra=[str(f["std"])], flux_tables=[str(f["table"])],
         sensitivity=str(out / "flux" / "sensitivity_A.fits"),
         qa_table=str(out / "flux" / "sensitivity_A_qa.ecsv"),
@@ -412,12 +415,12 @@ def test_adapters_write_specutils_readable_calibrated_spectra(night_files):
     assert list(qa["status"]) == ["used"] and qa["object"][0] == "TST-1"
     assert 0 < qa["fit_rms_percent"][0] < 0.5
     assert qa["wave_min_angstrom"][0] == pytest.approx(3900.0)
-    fit, header = fc.read_sensitivity(out / "flux" / "sensitivity_A.fits")
+    fit, header = products.read_sensitivity(out / "flux" / "sensitivity_A.fits")
     assert header["STATUS"] == "ok" and header["STD01"] == "TST-1"
     assert np.max(np.abs(fit.sensitivity(WAVE) / 10 ** (0.4 * true_sens_mag(WAVE)) - 1)) < 3e-3
     assert (out / "qa" / "sensitivity_A.png").stat().st_size > 10000
 
-    rows = fc.flux_calibrate_file(
+    rows = steps.flux_calibrate_file(
         spectra=str(f["sci"]), fluxed=str(out / "spectra_fluxed" / "sci_001"),
         qa_plot=str(out / "qa" / "sci_001_fluxed.png"),
         sensitivity=str(out / "flux" / "sensitivity_A.fits"),
@@ -435,7 +438,7 @@ def test_adapters_write_specutils_readable_calibrated_spectra(night_files):
     with fits.open(out / "spectra_fluxed" / "sci_001" / "GAL-1_ap1.fits") as hdul:
         assert hdul["CALVAR"].data.shape == WAVE.shape
         assert hdul[0].header["SENSERR"] == "not in VAR"
-    listing = Table.read(out / "spectra_fluxed" / "sci_001" / fc.LISTING_NAME)
+    listing = Table.read(out / "spectra_fluxed" / "sci_001" / products.LISTING_NAME)
     assert listing.meta["calibrated"] and listing["status"][0] == "calibrated"
 
 
@@ -444,12 +447,12 @@ def test_setup_without_standard_leaves_spectra_uncalibrated(night_files):
     out = f["tmp"] / "out"
     reason = "setup B has no usable standard-star frame"
     with pytest.warns(FluxCalibrationWarning, match="uncalibrated"):
-        rows = fc.flux_calibrate_file(spectra=str(f["sci"]),
+        rows = steps.flux_calibrate_file(spectra=str(f["sci"]),
                                       fluxed=str(out / "spectra_fluxed" / "sci_001"),
                                       qa_plot=str(out / "qa" / "sci_001_fluxed.png"),
                                       sensitivity=[], setup="B", uncalibrated_reason=reason)
     assert rows[0]["status"] == "uncalibrated" and rows[0]["reason"] == reason
-    listing = Table.read(out / "spectra_fluxed" / "sci_001" / fc.LISTING_NAME)
+    listing = Table.read(out / "spectra_fluxed" / "sci_001" / products.LISTING_NAME)
     assert not listing.meta["calibrated"] and listing.meta["reason"] == reason
     assert listing["file"][0].endswith("GAL-1_ap1.fits") and "spectra/sci_001" in listing["file"][0]
     assert not list((out / "spectra_fluxed" / "sci_001").glob("*.fits"))
@@ -461,17 +464,17 @@ def test_failed_standard_is_recorded_and_science_says_why(night_files):
     empty = f["tmp"] / "spectra" / "std_empty"
     empty.mkdir()
     with pytest.warns(FluxCalibrationWarning):
-        result = fc.fit_sensitivity_file(
+        result = steps.fit_sensitivity_file(
             spectra=[str(empty)], flux_tables=[str(f["table"])],
             sensitivity=str(out / "sens.fits"), qa_table=str(out / "sens_qa.ecsv"),
             qa_plot=str(out / "sens.png"), extinction_table=str(f["extinction"]), setup="A")
     assert result is None
-    fit, header = fc.read_sensitivity(out / "sens.fits")
+    fit, header = products.read_sensitivity(out / "sens.fits")
     assert fit is None and header["STATUS"] == "failed" and "no readable" in header["REASON"]
     qa = Table.read(out / "sens_qa.ecsv")
     assert qa.meta["status"] == "failed" and qa["status"][0] == "not used"
     with pytest.warns(FluxCalibrationWarning):
-        rows = fc.flux_calibrate_file(spectra=str(f["sci"]), fluxed=str(out / "fluxed"),
+        rows = steps.flux_calibrate_file(spectra=str(f["sci"]), fluxed=str(out / "fluxed"),
                                       sensitivity=str(out / "sens.fits"), setup="A")
     assert rows[0]["status"] == "uncalibrated" and "failed" in rows[0]["reason"]
 
@@ -482,12 +485,12 @@ def test_missing_airmass_is_computed_with_a_warning(night_files):
     write_test_spectrum(path, WAVE, np.ones(WAVE.size), np.ones(WAVE.size), OBJECT="X",
                         EXPTIME=600.0, RA=163.24, DEC=-18.61, SETUP="A",
                         **{"DATE-OBS": "2026-03-15T03:00:00"})
-    spec = fc.read_spectrum(path)
+    spec = inputs.read_spectrum(path)
     with pytest.raises(InputFileError, match="AIRMASS"):
-        fc.spectrum_airmass(spec)
+        ext.spectrum_airmass(spec.header, path=spec.path)
     with pytest.warns(FluxCalibrationWarning, match="computed"):
-        airmass, how = fc.spectrum_airmass(
-            spec, site=dict(latitude_deg=-27.81, longitude_deg=-69.44, height_m=2650.0))
+        airmass, how = ext.spectrum_airmass(
+            spec.header, path=spec.path, site=dict(latitude_deg=-27.81, longitude_deg=-69.44, height_m=2650.0))
     assert how == "computed" and 1.0 <= airmass < 3.0
 
 
@@ -495,7 +498,7 @@ def test_bad_inputs_name_the_file_and_what_was_expected(tmp_path, night_files):
     bad = tmp_path / "bad.ecsv"
     Table({"wavelength_angstrom": [4000.0, 5000.0], "fnu": [1.0, 2.0]}).write(bad)
     with pytest.raises(InputFileError, match=r"bad\.ecsv.*no flux column"):
-        fc.read_flux_table(bad)
+        standards.read_flux_table(bad)
     noext = tmp_path / "ext.ecsv"
     Table({"wavelength_angstrom": [4000.0, 5000.0]}).write(noext)
     with pytest.raises(InputFileError, match="extinction_mag_per_airmass"):
@@ -505,9 +508,9 @@ def test_bad_inputs_name_the_file_and_what_was_expected(tmp_path, night_files):
     with fits.open(wrong_unit, mode="update") as hdul:
         hdul[0].header["BUNIT"] = "m"
     with pytest.raises(InputFileError, match="BUNIT"):
-        fc.read_spectrum(wrong_unit)
+        inputs.read_spectrum(wrong_unit)
     with pytest.raises(InputFileError, match="not a directory"):
-        fc.read_spectra_directory(tmp_path / "nowhere")
+        inputs.read_spectra_directory(tmp_path / "nowhere")
 
 
 def test_flux_table_units_and_names(tmp_path):
@@ -517,9 +520,9 @@ def test_flux_table_units_and_names(tmp_path):
     t["flux"].unit = u.W / u.m ** 2 / u.nm
     t.meta["name"] = "trs 17"
     t.write(path)
-    table = fc.read_flux_table(path)
+    table = standards.read_flux_table(path)
     assert_allclose(table.flux, [1e-13, 2e-13])
-    assert fc.normalise_object_name(table.name) == fc.normalise_object_name("TRS-17")
+    assert standards.normalise_object_name(table.name) == standards.normalise_object_name("TRS-17")
 
 
 # ---------------------------------------------------------------------------- simulator truth
@@ -545,25 +548,25 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
     from demo_data import sources as src
     import yaml
 
-    cfg = yaml.safe_load(open(fc.Path(__file__).parents[1] / "config" / "config.yaml"))
+    cfg = yaml.safe_load(open(Path(__file__).parents[1] / "config" / "config.yaml"))
     regions = (cfg["flux_calibration"]["exclude_regions_angstrom"]
                + cfg["flux_calibration"]["telluric_bands_angstrom"])
-    root = fc.Path(__file__).parents[1] / "demo_data"
-    table = fc.read_flux_table(root / "standards" / "TRS-17.ecsv")
+    root = Path(__file__).parents[1] / "demo_data"
+    table = standards.read_flux_table(root / "standards" / "TRS-17.ecsv")
     site = ext.read_extinction_table(root / "tarn_ridge_extinction.ecsv")
     inst = sim.make_instrument()
     rng = np.random.default_rng(17)
     wave, counts, var, tr = _sim_trace(sim, inst, "TRS-17", tilt, filt, 1.15, 60.0, 1.05, rng)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FluxCalibrationWarning)
-        pts = fc.measure_sensitivity(wave, counts, var, exptime_s=60.0, airmass=1.15,
+        pts = sens.measure_sensitivity(wave, counts, var, exptime_s=60.0, airmass=1.15,
                                      flux_table=table, extinction=site, exclude_regions=regions)
-    fit = fc.fit_sensitivity(
+    fit = sens.fit_sensitivity(
         pts, max_extrapolation_angstrom=cfg["flux_calibration"]["max_extrapolation_angstrom"])
     # simulator truth of S: throughput x area x photons per erg x the standard's slit fraction
     true_s = (np.asarray(tr["throughput"]) * src.TELESCOPE_AREA_CM2 * wave
               / src.HC_ERG_ANGSTROM * np.asarray(tr["slit_fraction"]))
-    telluric = fc.exclusion_mask(wave, [[6855.0, 6960.0], [7580.0, 7720.0]])
+    telluric = pixels.exclusion_mask(wave, [[6855.0, 6960.0], [7580.0, 7720.0]])
     ratio = fit.sensitivity(wave) / true_s - 1
     fitted = (wave >= fit.wave_min) & (wave <= fit.wave_max) & ~telluric
     # stated 0.5 % at every pixel of the fitted range (measured 0.1-0.15 %) and 1.5 % where
@@ -576,7 +579,7 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
                                              ("TRG-511", 1.3, 3600.0, 1.12)):
         ws, cs, vs, trs = _sim_trace(sim, inst, target, tilt, filt, airmass, exptime, seeing,
                                      rng)
-        cal = fc.calibrate_spectrum(ws, cs, vs, exptime_s=exptime, airmass=airmass,
+        cal = calibrate.calibrate_spectrum(ws, cs, vs, exptime_s=exptime, airmass=airmass,
                                     sensitivity=fit, extinction=site)
         tgt = src.TARGETS[target]
         # what a slit spectrum calibrated on a point-source standard gives (no slit-loss
@@ -591,7 +594,7 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
         lines = [[ln.rest_wavelength_angstrom * (1 + z) - 25.0,
                   ln.rest_wavelength_angstrom * (1 + z) + 25.0] for ln in tgt.lines]
         lines += [[4000.0 * (1 + z) - 100.0, 4000.0 * (1 + z) + 100.0]] if tgt.lines else []
-        good = (cal.mask == 0) & ~fc.exclusion_mask(ws, regions + lines)
+        good = (cal.mask == 0) & ~pixels.exclusion_mask(ws, regions + lines)
         r = cal.flux[good] / expected[good]
         w = expected[good] ** 2 / cal.variance[good]
         # stated: weighted mean within 1 % (measured 0.1-0.6 %); in 250-A bins within
@@ -614,7 +617,7 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
             else:
                 groups.append([centre, centre, ln.flux_erg_s_cm2])
         n_checked = 0
-        dw = np.diff(fc.pixel_edges(ws))
+        dw = np.diff(pixels.pixel_edges(ws))
         for lo, hi, flux in groups:
             near = (ws > lo - 25.0) & (ws < hi + 25.0)
             if lo - 30 < ws[0] or hi + 30 > ws[-1] or flux < 0.5e-15:
@@ -632,7 +635,7 @@ def test_direct_reader_agrees_with_specutils(night_files):
     from specutils import Spectrum
 
     path = night_files["sci"] / "GAL-1_ap1.fits"
-    direct = fc.read_spectrum(path)
+    direct = inputs.read_spectrum(path)
     spec = Spectrum.read(str(path))
     assert_allclose(direct.wave_angstrom, spec.spectral_axis.to_value(u.AA), rtol=1e-12)
     assert_allclose(direct.values, spec.flux.to_value(u.electron))
@@ -641,11 +644,11 @@ def test_direct_reader_agrees_with_specutils(night_files):
     assert direct.header["OBJECT"] == spec.meta["header"]["OBJECT"]
     # a file the direct reader cannot interpret goes through specutils (tabular layout)
     tab = night_files["tmp"] / "tabular.fits"
-    flux_unit = u.Unit(fc.FLUX_UNIT)
+    flux_unit = u.Unit(standards.FLUX_UNIT)
     Spectrum(spectral_axis=WAVE * u.AA, flux=spec.flux.value * flux_unit,
              uncertainty=VarianceUncertainty(spec.uncertainty.array * flux_unit ** 2)).write(
         str(tab), format="tabular-fits")
-    via = fc.read_spectrum(tab, expected_unit=fc.FLUX_UNIT)
+    via = inputs.read_spectrum(tab, expected_unit=standards.FLUX_UNIT)
     assert_allclose(via.wave_angstrom, WAVE)
     assert_allclose(via.values, direct.values, rtol=1e-6)
     assert_allclose(via.variance, direct.variance, rtol=1e-5)
@@ -659,14 +662,14 @@ def test_simulated_targets_in_physical_units_with_slit_loss_model(tilt, filt):
     import demo_data.simulate as sim
     from demo_data import sources as src
 
-    root = fc.Path(__file__).parents[1] / "demo_data"
-    table = fc.read_flux_table(root / "standards" / "TRS-17.ecsv")
+    root = Path(__file__).parents[1] / "demo_data"
+    table = standards.read_flux_table(root / "standards" / "TRS-17.ecsv")
     site = ext.read_extinction_table(root / "tarn_ridge_extinction.ecsv")
     inst = sim.make_instrument()
     rng = np.random.default_rng(29)
 
     def fraction(wave, seeing):
-        return fc.gaussian_slit_fraction(wave, fwhm_arcsec=seeing, reference_wave_angstrom=5000.0,
+        return slitloss.gaussian_slit_fraction(wave, fwhm_arcsec=seeing, reference_wave_angstrom=5000.0,
                                          slit_width_arcsec=inst.slit_width_arcsec)
 
     wave, counts, var, tr = _sim_trace(sim, inst, "TRS-17", tilt, filt, 1.15, 60.0, 1.05, rng)
@@ -675,16 +678,16 @@ def test_simulated_targets_in_physical_units_with_slit_loss_model(tilt, filt):
     assert_allclose(fraction(wave, 1.05), tr["slit_fraction"], rtol=5e-3)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FluxCalibrationWarning)
-        pts = fc.measure_sensitivity(wave, counts, var, exptime_s=60.0, airmass=1.15,
+        pts = sens.measure_sensitivity(wave, counts, var, exptime_s=60.0, airmass=1.15,
                                      flux_table=table, extinction=site, exclude_regions=REGIONS
                                      + [[6855.0, 6960.0], [7580.0, 7720.0]],
                                      slit_fraction=fraction(wave, 1.05))
-    fit = fc.fit_sensitivity(pts)
+    fit = sens.fit_sensitivity(pts)
     for target, seeing, exptime in (("TRV-9", 1.2, 900.0), ("TRG-511", 1.12, 3600.0)):
         ws, cs, vs, trs = _sim_trace(sim, inst, target, tilt, filt, 1.45, exptime, seeing, rng)
         tgt = src.TARGETS[target]
         point = tgt.kind == "point"
-        cal = fc.calibrate_spectrum(ws, cs, vs, exptime_s=exptime, airmass=1.45,
+        cal = calibrate.calibrate_spectrum(ws, cs, vs, exptime_s=exptime, airmass=1.45,
                                     sensitivity=fit, extinction=site,
                                     slit_fraction=fraction(ws, seeing) if point else None)
         z = tgt.redshift
@@ -692,7 +695,7 @@ def test_simulated_targets_in_physical_units_with_slit_loss_model(tilt, filt):
                  * (1 + z) + 25] for ln in tgt.lines]
         skip += [[4000 * (1 + z) - 100, 4000 * (1 + z) + 100]] if tgt.lines else []
         skip += [[6855.0, 6960.0], [7580.0, 7720.0]] + REGIONS
-        good = (cal.mask == 0) & ~fc.exclusion_mask(ws, skip)
+        good = (cal.mask == 0) & ~pixels.exclusion_mask(ws, skip)
         truth = tgt.continuum(ws)
         weight = truth[good] ** 2 / cal.variance[good]
         mean = np.sum(weight * cal.flux[good] / truth[good]) / np.sum(weight)
@@ -717,13 +720,13 @@ def test_adapters_apply_the_slit_loss_model_from_profile_widths(tmp_path, standa
         write_test_spectrum(tmp_path / "sci" / f"{name}_ap1.fits", WAVE, counts, var,
                             OBJECT=name, APFWHMPX=sampled(fwhm_px), **common)
     kw = dict(extinction_table=str(tug77[0]), spatial_scale_arcsec_per_px=0.2)
-    fc.fit_sensitivity_file(spectra=[str(tmp_path / "std")], flux_tables=[str(table_path)],
+    steps.fit_sensitivity_file(spectra=[str(tmp_path / "std")], flux_tables=[str(table_path)],
                             sensitivity=str(tmp_path / "s.fits"), qa_table=str(tmp_path / "q.ecsv"),
                             qa_plot=str(tmp_path / "q.png"), setup="A", exclude_regions=REGIONS,
                             slit_loss_correction=True, **kw)
-    fit, header = fc.read_sensitivity(tmp_path / "s.fits")
+    fit, header = products.read_sensitivity(tmp_path / "s.fits")
     assert header["SLITCORR"] and header["STDFWHM"] == pytest.approx(1.0)
-    fc.flux_calibrate_file(spectra=str(tmp_path / "sci"), fluxed=str(tmp_path / "out"),
+    steps.flux_calibrate_file(spectra=str(tmp_path / "sci"), fluxed=str(tmp_path / "out"),
                            sensitivity=str(tmp_path / "s.fits"), setup="A", **kw)
     star = fits.getdata(tmp_path / "out" / "STAR_ap1.fits")
     galaxy = fits.getdata(tmp_path / "out" / "GALAXY_ap1.fits")
@@ -742,21 +745,21 @@ def test_fluxed_file_gets_a_wcs_when_the_input_header_has_none(tmp_path):
     from specutils import Spectrum
 
     wave = 4000.0 * np.exp(np.arange(300) * 2e-4)
-    spec = fc.ExtractedSpectrum(wave, np.ones(300), np.ones(300), np.zeros(300, np.uint8),
+    spec = inputs.ExtractedSpectrum(wave, np.ones(300), np.ones(300), np.zeros(300, np.uint8),
                                 fits.Header({"OBJECT": "X"}), "in.fits")
-    fit = fc.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
+    fit = sens.SensitivityFit("chebyshev", 1, np.array([39.0, 0.0]), np.zeros((2, 2)),
                             np.array([3900.0, 7000.0]), 3900.0, 7000.0)
-    cal = fc.calibrate_spectrum(wave, spec.values, spec.variance, exptime_s=1.0, airmass=1.0,
+    cal = calibrate.calibrate_spectrum(wave, spec.values, spec.variance, exptime_s=1.0, airmass=1.0,
                                 sensitivity=fit)
-    fc.write_fluxed_spectrum(tmp_path / "x.fits", spec, cal)
+    products.write_fluxed_spectrum(tmp_path / "x.fits", spec, cal)
     back = Spectrum.read(str(tmp_path / "x.fits"))
     assert back.meta["header"]["CTYPE1"] == "AWAV-LOG"
     assert_allclose(back.spectral_axis.to_value(u.AA), wave, rtol=1e-9)
     curved = wave + 1e-3 * np.arange(300) ** 2  # neither linear nor log-linear
-    bad = fc.ExtractedSpectrum(curved, np.ones(300), np.ones(300), np.zeros(300, np.uint8),
+    bad = inputs.ExtractedSpectrum(curved, np.ones(300), np.ones(300), np.zeros(300, np.uint8),
                                fits.Header(), "in.fits")
-    with pytest.raises(fc.FluxCalibrationError, match="neither linear nor log-linear"):
-        fc.write_fluxed_spectrum(tmp_path / "y.fits", bad, fc.CalibratedSpectrum(
+    with pytest.raises(FluxCalibrationError, match="neither linear nor log-linear"):
+        products.write_fluxed_spectrum(tmp_path / "y.fits", bad, calibrate.CalibratedSpectrum(
             curved, cal.flux, cal.variance, cal.mask, cal.calibration_variance))
 
 
@@ -766,7 +769,7 @@ def test_unusable_extinction_table_leaves_the_night_going(night_files):
     broken.write_text("not a table\n")
     out = f["tmp"] / "out"
     with pytest.warns(FluxCalibrationWarning):
-        fit = fc.fit_sensitivity_file(
+        fit = steps.fit_sensitivity_file(
             spectra=[str(f["std"])], flux_tables=[str(f["table"])],
             sensitivity=str(out / "s.fits"), qa_table=str(out / "q.ecsv"),
             qa_plot=str(out / "q.png"), extinction_table=str(broken), setup="A")
@@ -777,11 +780,11 @@ def test_unusable_extinction_table_leaves_the_night_going(night_files):
 def test_calibrated_standard_is_compared_with_its_table(night_files):
     f = night_files
     out = f["tmp"] / "out"
-    fc.fit_sensitivity_file(spectra=[str(f["std"])], flux_tables=[str(f["table"])],
+    steps.fit_sensitivity_file(spectra=[str(f["std"])], flux_tables=[str(f["table"])],
                             sensitivity=str(out / "s.fits"), qa_table=str(out / "q.ecsv"),
                             qa_plot=str(out / "q.png"), extinction_table=str(f["extinction"]),
                             setup="A", exclude_regions=REGIONS)
-    rows = fc.flux_calibrate_file(spectra=str(f["std"]), fluxed=str(out / "std"),
+    rows = steps.flux_calibrate_file(spectra=str(f["std"]), fluxed=str(out / "std"),
                                   qa_plot=str(out / "std.png"), sensitivity=str(out / "s.fits"),
                                   extinction_table=str(f["extinction"]), setup="A",
                                   flux_table=str(f["table"]), exclude_regions=REGIONS)
@@ -789,21 +792,21 @@ def test_calibrated_standard_is_compared_with_its_table(night_files):
     # table within 0.1 % in the median; per-pixel rms ~ its photon noise (0.2-0.3 %)
     assert rows[0]["table_ratio_median"] == pytest.approx(1.0, abs=1e-3)
     assert rows[0]["table_ratio_rms_percent"] < 0.6
-    listing = Table.read(out / "std" / fc.LISTING_NAME)
+    listing = Table.read(out / "std" / products.LISTING_NAME)
     assert "table_ratio_rms_percent" in listing.colnames
 
 
 def test_products_record_their_inputs_and_calibrations(night_files):
     f = night_files
     out = f["tmp"] / "out"
-    fc.fit_sensitivity_file(spectra=[str(f["std"])], flux_tables=[str(f["table"])],
+    steps.fit_sensitivity_file(spectra=[str(f["std"])], flux_tables=[str(f["table"])],
                             sensitivity=str(out / "s.fits"), qa_table=str(out / "q.ecsv"),
                             qa_plot=str(out / "q.png"), extinction_table=str(f["extinction"]),
                             setup="A", exclude_regions=REGIONS)
     h = fits.getheader(out / "s.fits")
     assert h["INPUT01"] == "TST-1_ap1.fits"
     assert {h["CALIB01"], h["CALIB02"]} == {"TST-1.ecsv", "extinction_curve.csv"}
-    fc.flux_calibrate_file(spectra=str(f["sci"]), fluxed=str(out / "sci"),
+    steps.flux_calibrate_file(spectra=str(f["sci"]), fluxed=str(out / "sci"),
                            sensitivity=str(out / "s.fits"), extinction_table=str(f["extinction"]),
                            setup="A")
     h = fits.getheader(out / "sci" / "GAL-1_ap1.fits")
@@ -818,8 +821,8 @@ def test_simulated_telluric_bands_divided_out():
     import demo_data.simulate as sim
     from demo_data import sources as src
 
-    root = fc.Path(__file__).parents[1] / "demo_data"
-    table = fc.read_flux_table(root / "standards" / "TRS-17.ecsv")
+    root = Path(__file__).parents[1] / "demo_data"
+    table = standards.read_flux_table(root / "standards" / "TRS-17.ecsv")
     site = ext.read_extinction_table(root / "tarn_ridge_extinction.ecsv")
     bands = [[6855.0, 6960.0], [7580.0, 7720.0]]
     inst = sim.make_instrument()
@@ -828,19 +831,19 @@ def test_simulated_telluric_bands_divided_out():
                                        rng)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", FluxCalibrationWarning)
-        pts = fc.measure_sensitivity(wave, counts, var, exptime_s=60.0, airmass=1.15,
+        pts = sens.measure_sensitivity(wave, counts, var, exptime_s=60.0, airmass=1.15,
                                      flux_table=table, extinction=site,
                                      exclude_regions=REGIONS + bands)
-    fit = fc.fit_sensitivity(pts)
-    template = fc.telluric_template([pts], fit, bands, airmass_exponent=0.6)
+    fit = sens.fit_sensitivity(pts)
+    template = tell.telluric_template([pts], fit, bands, airmass_exponent=0.6)
     ws, cs, vs, trs = _sim_trace(sim, inst, "TRV-9", 11.83, "GG495", 1.8, 1800.0, 1.05, rng)
     expected = src.TARGETS["TRV-9"].continuum(ws) * np.asarray(trs["slit_fraction"]) / np.asarray(
         tr["slit_fraction"])
-    in_band = fc.exclusion_mask(ws, bands) & (ws < fit.wave_max + fit.max_extrapolation_angstrom)
+    in_band = pixels.exclusion_mask(ws, bands) & (ws < fit.wave_max + fit.max_extrapolation_angstrom)
     deep = in_band & (np.asarray(trs["telluric_transmission"]) < 0.8)
     assert deep.sum() > 30
     for telluric, tolerance in ((template, 0.02), (None, None)):
-        cal = fc.calibrate_spectrum(ws, cs, vs, exptime_s=1800.0, airmass=1.8, sensitivity=fit,
+        cal = calibrate.calibrate_spectrum(ws, cs, vs, exptime_s=1800.0, airmass=1.8, sensitivity=fit,
                                     extinction=site, telluric=telluric)
         ratio = cal.flux[deep] / expected[deep]
         if telluric is None:

@@ -17,11 +17,13 @@ from pathlib import Path
 
 import numpy as np
 
+from pipeline.core.checks import as_1d_float
 from pipeline.core.errors import FluxCalibrationWarning, InputFileError
+from pipeline.core.headers import header_float
 
 __all__ = [
     "ExtinctionCurve", "read_extinction_table", "extinction_at", "transmission",
-    "effective_airmass",
+    "effective_airmass", "as_airmass", "spectrum_airmass",
 ]
 
 
@@ -47,8 +49,8 @@ class ExtinctionCurve:
     info: dict = field(default_factory=dict)
 
     def __post_init__(self):
-        wave = _as_1d_float(self.wave_angstrom, "wave_angstrom")
-        k = _as_1d_float(self.k_mag_per_airmass, "k_mag_per_airmass")
+        wave = as_1d_float(self.wave_angstrom, "wave_angstrom")
+        k = as_1d_float(self.k_mag_per_airmass, "k_mag_per_airmass")
         if wave.shape != k.shape:
             raise ValueError(f"`k_mag_per_airmass` must have the shape of `wave_angstrom` "
                              f"{wave.shape}, got {k.shape}")
@@ -65,11 +67,19 @@ class ExtinctionCurve:
         return extinction_at(self, wave_angstrom, outside=outside)
 
 
-def _as_1d_float(value, name):
-    arr = np.array(value, dtype=float)
-    if arr.ndim != 1:
-        raise ValueError(f"`{name}` must be 1-D, got shape {arr.shape}")
-    return arr
+def as_airmass(value, name="airmass"):
+    """``value`` as a finite airmass >= 1 (a tolerance of 1e-6 below 1 is allowed).
+
+    >>> as_airmass(1.25)
+    1.25
+    """
+    try:
+        airmass = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"`{name}` must be a finite number >= 1, got {value!r}") from None
+    if not math.isfinite(airmass) or airmass < 1.0 - 1e-6:
+        raise ValueError(f"`{name}` must be a finite number >= 1, got {value!r}")
+    return airmass
 
 
 def extinction_at(curve, wave_angstrom, *, outside="hold"):
@@ -243,3 +253,52 @@ def effective_airmass(ra_deg, dec_deg, date_obs, exptime_s, *, latitude_deg, lon
                          f"the exposure starting {date_obs}")
     secz = 1.0 / np.sin(np.radians(alt))
     return float((secz[0] + 4 * secz[1] + secz[2]) / 6.0)
+
+
+def spectrum_airmass(header, *, site=None, path="<header>"):
+    """Airmass of a spectrum: header AIRMASS, or computed from RA, DEC, DATE-OBS, EXPTIME.
+
+    Parameters
+    ----------
+    header : astropy.io.fits.Header
+    site : dict or None
+        ``latitude_deg``, ``longitude_deg``, ``height_m``; needed only when
+        AIRMASS is missing.
+    path : str
+        The file the header came from (for messages).
+
+    Returns
+    -------
+    airmass : float
+    how : str
+        'header' or 'computed'.
+
+    Raises
+    ------
+    InputFileError
+        When AIRMASS is unusable and cannot be computed.
+    """
+    try:
+        airmass = header_float(header, "AIRMASS", path=path, default=math.nan)
+    except InputFileError:
+        airmass = math.nan
+    if math.isfinite(airmass) and airmass >= 1.0 - 1e-6:
+        return airmass, "header"
+    if not site:
+        raise InputFileError(path, f"header keyword AIRMASS is {header.get('AIRMASS')!r}; "
+                             "expected a number >= 1 (or a site to compute it from RA, DEC and "
+                             "DATE-OBS)")
+    try:
+        value = effective_airmass(
+            header_float(header, "RA", path=path), header_float(header, "DEC", path=path),
+            str(header["DATE-OBS"]), header_float(header, "EXPTIME", path=path),
+            latitude_deg=site["latitude_deg"], longitude_deg=site["longitude_deg"],
+            height_m=site["height_m"])
+    except (KeyError, ValueError, InputFileError) as exc:
+        raise InputFileError(path, f"header keyword AIRMASS is {header.get('AIRMASS')!r} and it "
+                             f"cannot be computed from RA, DEC, DATE-OBS ({exc}); expected "
+                             "AIRMASS >= 1") from exc
+    warnings.warn(f"{path}: AIRMASS {header.get('AIRMASS')!r} unusable; computed {value:.4f} "
+                  "from RA, DEC, DATE-OBS and EXPTIME at the site", FluxCalibrationWarning,
+                  stacklevel=2)
+    return value, "computed"

@@ -1,6 +1,6 @@
 """QA figures of the flux calibration (matplotlib, written as PNG).
 
-Functions take result objects of :mod:`pipeline.fluxcal.sensitivity` and a path; they
+Functions take result objects of :mod:`pipeline.fluxcal` (sensitivity, calibrate) and a path; they
 never compute science themselves.
 """
 
@@ -93,9 +93,9 @@ def plot_fluxed_spectra(spectra, path, *, title="", reference=None):
 
     Parameters
     ----------
-    spectra : sequence of (label, pipeline.fluxcal.sensitivity.CalibratedSpectrum)
+    spectra : sequence of (label, pipeline.fluxcal.calibrate.CalibratedSpectrum)
     path : str or Path
-    reference : pipeline.fluxcal.sensitivity.FluxTable, optional
+    reference : pipeline.fluxcal.standards.FluxTable, optional
         Drawn over the spectra (a standard star's table).
     """
     plt = _pyplot()

@@ -171,7 +171,7 @@ def extraction_products(frame_id):
 
 # ---- helpers of the flux calibration rules (fluxcal.smk) ----
 
-from pipeline.fluxcal.sensitivity import normalise_object_name as _fc_key
+from pipeline.fluxcal.standards import normalise_object_name as _fc_key
 
 FLUXCAL = config.get("flux_calibration", {})
 _FC_TABLES = {_fc_key(name): path for name, path in FLUXCAL.get("standard_flux_tables", {}).items()}

@@ -37,8 +37,8 @@ STEPS = {
     "find_arc_lines": ("pipeline.wavelength.arclines", "find_arc_lines_file"),
     "solve_wavelength": ("pipeline.wavelength.solve", "solve_wavelength_file"),
     "extract_spectra": ("pipeline.extraction.steps", "extract_frame_file"),
-    "fit_sensitivity": ("pipeline.fluxcal.sensitivity", "fit_sensitivity_file"),
-    "flux_calibrate": ("pipeline.fluxcal.sensitivity", "flux_calibrate_file"),
+    "fit_sensitivity": ("pipeline.fluxcal.steps", "fit_sensitivity_file"),
+    "flux_calibrate": ("pipeline.fluxcal.steps", "flux_calibrate_file"),
     "manifest": ("pipeline.products.manifest", "write_manifest_file"),
     "night_report": ("pipeline.products.report", "write_night_report_file"),
 }
