@@ -429,7 +429,12 @@ def test_adapters_write_specutils_readable_calibrated_spectra(night_files):
     spec = Spectrum.read(str(out / "spectra_fluxed" / "sci_001" / "GAL-1_ap1.fits"))
     assert spec.flux.unit == u.Unit("erg / (s cm2 Angstrom)")
     assert_allclose(spec.spectral_axis.to_value(u.AA), WAVE, rtol=1e-10)
-    assert spec.meta["header"]["OBJECT"] == "GAL-1" and spec.meta["header"]["FLUXCAL"]
+    header = spec.meta["header"]
+    assert header["OBJECT"] == "GAL-1"
+    # archive convention: FLUXCAL is the string 'ABSOLUTE' (or 'UNCALIBRATED'), not a boolean
+    assert header["FLUXCAL"] == "ABSOLUTE"
+    # the standards' cards: exactly the STDnn of the sensitivity, nothing else starting STD
+    assert header["FCSTD01"] == "TST-1" and "FCSTD02" not in header
     assert spec.mask[300] & MaskBit.COSMIC_RAY
     sig = np.sqrt(spec.uncertainty.represent_as(VarianceUncertainty).array)
     good = spec.mask == 0
@@ -737,6 +742,36 @@ def test_adapters_apply_the_slit_loss_model_from_profile_widths(tmp_path, standa
     # galaxy is not
     i = np.argmin(np.abs(WAVE - 5000.0))
     assert galaxy[i] / star[i] == pytest.approx(0.7610, abs=2e-4)
+
+
+def test_only_standard_name_cards_are_copied_to_calibrated_spectra(tmp_path, standard_obs,
+                                                                   tug77):
+    # A sensitivity with a slit-loss model carries STDFWHM beside STD01: the calibrated
+    # spectrum must name the one standard (FCSTD01) and nothing else (no FCSTD02 = 1.0).
+    table, counts, var = standard_obs
+    table_path = tmp_path / "TST-1.ecsv"
+    Table({"wavelength_angstrom": table.wave_angstrom,
+           "flux_erg_s_cm2_angstrom": table.flux}).write(table_path)
+    common = dict(EXPTIME=120.0, AIRMASS=1.4, SETUP="A", SLITWID=1.2, BINSPAT=2,
+                  APREFWL=5000.0, APFWHMPX=3.0)
+    write_test_spectrum(tmp_path / "std" / "TST-1_ap1.fits", WAVE, counts, var,
+                        OBJECT="TST-1", **common)
+    kw = dict(extinction_table=str(tug77[0]), spatial_scale_arcsec_per_px=0.2)
+    steps.fit_sensitivity_file(spectra=[str(tmp_path / "std")], flux_tables=[str(table_path)],
+                               sensitivity=str(tmp_path / "s.fits"),
+                               qa_table=str(tmp_path / "q.ecsv"), qa_plot=str(tmp_path / "q.png"),
+                               setup="A", exclude_regions=REGIONS, slit_loss_correction=True, **kw)
+    sens_header = fits.getheader(tmp_path / "s.fits")
+    assert "STDFWHM" in sens_header and sens_header["STD01"] == "TST-1"
+    steps.flux_calibrate_file(spectra=str(tmp_path / "std"), fluxed=str(tmp_path / "out"),
+                              sensitivity=str(tmp_path / "s.fits"), setup="A", **kw)
+    header = fits.getheader(tmp_path / "out" / "TST-1_ap1.fits")
+    assert header["FCSTD01"] == "TST-1"
+    assert sorted(k for k in header if k.startswith("FCSTD")) == ["FCSTD01"]
+    # the pure function: two standards and a non-standard STD card
+    cards = calibrate.standard_cards(fits.Header({"STD01": "A", "STDFWHM": 1.2, "STD02": "B",
+                                                  "STDDEV": 3.0}))
+    assert {k: v[0] for k, v in cards.items()} == {"FCSTD01": "A", "FCSTD02": "B"}
 
 
 def test_fluxed_file_gets_a_wcs_when_the_input_header_has_none(tmp_path):

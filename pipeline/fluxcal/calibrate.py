@@ -6,6 +6,7 @@ with the slit fraction of a point source and the telluric transmission when give
 treatment and the header cards of its calibrated product.
 """
 
+import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,7 +25,10 @@ from pipeline.fluxcal.standards import FLUX_UNIT, table_flux_in_pixels
 
 __all__ = ["CalibratedSpectrum", "calibrate_spectrum", "CalibrationOptions", "SpectrumCalibration",
            "slit_treatment", "fluxed_header_cards", "compare_with_table", "calibrate_one",
-           "FrameCalibration", "calibrate_frame"]
+           "FrameCalibration", "calibrate_frame", "standard_cards"]
+
+#: the sensitivity product's cards naming a standard star used: STD01, STD02, ...
+_STANDARD_CARD = re.compile(r"STD\d\d")
 
 
 @dataclass(frozen=True)
@@ -212,11 +216,32 @@ def slit_treatment(spectrum, sensitivity_header, options):
     return None, ("extended", f"flux through the slit (FWHM {fwhm:.2f} arcsec)")
 
 
+def standard_cards(sensitivity_header):
+    """The sensitivity's ``STDnn`` cards (the standard stars used) renamed ``FCSTDnn``.
+
+    Only ``STD`` followed by two digits: other cards starting with STD (``STDFWHM``)
+    are not standards.
+
+    >>> from astropy.io import fits
+    >>> standard_cards(fits.Header({"STD01": "TRS-17", "STDFWHM": 1.1, "STD02": "TRS-4"}))
+    {'FCSTD01': ('TRS-17', 'standard of the sensitivity'), 'FCSTD02': ('TRS-4', 'standard of the sensitivity')}
+    """
+    names = [sensitivity_header[key] for key in sensitivity_header
+             if _STANDARD_CARD.fullmatch(key)]
+    return {f"FCSTD{i:02d}": (name, "standard of the sensitivity")
+            for i, name in enumerate(names, start=1)}
+
+
 def fluxed_header_cards(*, sensitivity_name, sensitivity_header, airmass, airmass_how, info,
                         slit_card, extinction_source, include_sensitivity_error):
-    """Keywords added to a calibrated spectrum's header (values or (value, comment))."""
+    """Keywords added to a calibrated spectrum's header (values or (value, comment)).
+
+    ``FLUXCAL = 'ABSOLUTE'`` follows the archive convention for spectra whose flux is in
+    absolute physical units (string 'ABSOLUTE' or 'UNCALIBRATED'); what the flux of a
+    point or extended source refers to is in ``SLITLOSS``.
+    """
     cards = {
-        "FLUXCAL": (True, "flux calibrated"),
+        "FLUXCAL": ("ABSOLUTE", "flux in absolute units (BUNIT)"),
         "SENSFILE": (sensitivity_name, "sensitivity product used"),
         "AIRMUSED": (airmass, f"airmass used ({airmass_how})"),
         "NEXTRAP": (info["n_extrapolated"], "pixels with extrapolated sensitivity"),
@@ -227,8 +252,7 @@ def fluxed_header_cards(*, sensitivity_name, sensitivity_header, airmass, airmas
         "SENSERR": ("included" if include_sensitivity_error else "not in VAR",
                     "sensitivity error; always in HDU CALVAR"),
     }
-    for i, key in enumerate(k for k in sensitivity_header if k.startswith("STD")):
-        cards[f"FCSTD{i + 1:02d}"] = (sensitivity_header[key], "standard of the sensitivity")
+    cards.update(standard_cards(sensitivity_header))
     return cards
 
 
