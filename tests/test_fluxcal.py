@@ -26,7 +26,8 @@ from numpy.testing import assert_allclose
 from scipy.ndimage import gaussian_filter1d
 
 from pipeline.core.errors import FluxCalibrationError, FluxCalibrationWarning, InputFileError
-from pipeline.fluxcal import calibrate, inputs, pixels, products, slitloss, standards, steps
+from pipeline.fluxcal import (calibrate, flux_tables, inputs, pixels, products, slitloss,
+                             standards, steps)
 from pipeline.fluxcal import extinction as ext
 from pipeline.fluxcal import sensitivity as sens
 from pipeline.fluxcal import telluric as tell
@@ -495,15 +496,16 @@ def test_missing_airmass_is_computed_with_a_warning(night_files):
         ext.spectrum_airmass(spec.header, path=spec.path)
     with pytest.warns(FluxCalibrationWarning, match="computed"):
         airmass, how = ext.spectrum_airmass(
-            spec.header, path=spec.path, site=dict(latitude_deg=-27.81, longitude_deg=-69.44, height_m=2650.0))
+            spec.header, path=spec.path,
+            site=dict(latitude_deg=-27.81, longitude_deg=-69.44, height_m=2650.0))
     assert how == "computed" and 1.0 <= airmass < 3.0
 
 
 def test_bad_inputs_name_the_file_and_what_was_expected(tmp_path, night_files):
     bad = tmp_path / "bad.ecsv"
     Table({"wavelength_angstrom": [4000.0, 5000.0], "fnu": [1.0, 2.0]}).write(bad)
-    with pytest.raises(InputFileError, match=r"bad\.ecsv.*no flux column"):
-        standards.read_flux_table(bad)
+    with pytest.raises(InputFileError, match=r"bad\.ecsv.*flux column fnu has unit none"):
+        flux_tables.read_flux_table(bad)
     noext = tmp_path / "ext.ecsv"
     Table({"wavelength_angstrom": [4000.0, 5000.0]}).write(noext)
     with pytest.raises(InputFileError, match="extinction_mag_per_airmass"):
@@ -525,9 +527,142 @@ def test_flux_table_units_and_names(tmp_path):
     t["flux"].unit = u.W / u.m ** 2 / u.nm
     t.meta["name"] = "trs 17"
     t.write(path)
-    table = standards.read_flux_table(path)
+    table = flux_tables.read_flux_table(path)
     assert_allclose(table.flux, [1e-13, 2e-13])
     assert standards.normalise_object_name(table.name) == standards.normalise_object_name("TRS-17")
+
+
+# Speed of light in Angstrom/s (CODATA exact value, c = 299792458 m/s) and the AB zero point
+# (Oke & Gunn 1983: m_AB = -2.5 log10 f_nu[erg/s/cm2/Hz] - 48.60): the by-hand truths below.
+C_ANGSTROM_S = 2.99792458e18
+AB_ZERO_POINT = 48.60
+TABLE_WAVE = np.array([4000.0, 5000.0, 6500.0, 8000.0])
+
+
+def _write(tmp_path, name, columns, *, units=None, meta=None):
+    path = tmp_path / name
+    t = Table(columns, meta=meta or {})
+    for col, unit in (units or {}).items():
+        t[col].unit = unit
+    t.write(path, overwrite=True)
+    return path
+
+
+def test_flux_table_air_wavelength_name_is_accepted(tmp_path):
+    # the case refused before: `wavelength_air_angstrom` with units only in the name
+    flam = np.array([1.0, 2.0, 3.0, 4.0]) * 1e-13
+    path = _write(tmp_path, "a.ecsv", {"wavelength_air_angstrom": TABLE_WAVE,
+                                       "flux_erg_s_cm2_angstrom": flam})
+    table = flux_tables.read_flux_table(path)
+    assert_allclose(table.wave_angstrom, TABLE_WAVE) and assert_allclose(table.flux, flam)
+    assert table.info["medium"] == "air" and "column name" in table.info["medium_declared_in"]
+
+
+def test_flux_table_in_nm_with_units_in_the_ecsv_metadata(tmp_path):
+    path = _write(tmp_path, "nm.ecsv", {"wavelength": TABLE_WAVE / 10.0,
+                                        "flux": np.full(4, 1e-15),
+                                        "bin_width": np.full(4, 0.5)},
+                  units={"wavelength": u.nm, "flux": u.W / u.m ** 2 / u.nm, "bin_width": u.nm},
+                  meta={"wavelength_medium": "air"})
+    table = flux_tables.read_flux_table(path)
+    assert_allclose(table.wave_angstrom, TABLE_WAVE)
+    assert_allclose(table.bin_width_angstrom, 5.0)
+    # 1 W m-2 nm-1 = 1e7 erg/s / 1e4 cm2 / 10 A = 100 erg/s/cm2/A (by hand), and astropy agrees
+    assert_allclose(table.flux, 1e-13)
+    assert_allclose(table.flux, (1e-15 * u.W / u.m ** 2 / u.nm).to_value(
+        u.erg / u.s / u.cm ** 2 / u.AA))
+
+
+def test_flux_table_in_vacuum_is_converted_to_air(tmp_path):
+    # the pipeline works in air: a vacuum table's wavelengths (and bin edges) are moved to
+    # air; specutils' Morton 2000 conversion agrees with ours (Ciddor 1996) within 0.2 mA
+    # over 3000-10000 A (library notes)
+    from specutils.utils.wcs_utils import vac_to_air
+
+    path = _write(tmp_path, "vac.ecsv", {"wavelength_vacuum_angstrom": TABLE_WAVE,
+                                         "flux_erg_s_cm2_angstrom": np.full(4, 1e-13),
+                                         "bin_width_angstrom": np.full(4, 20.0)})
+    table = flux_tables.read_flux_table(path)
+    expected = vac_to_air(TABLE_WAVE * u.AA).to_value(u.AA)
+    assert_allclose(table.wave_angstrom, expected, atol=1e-3)
+    assert np.all(TABLE_WAVE - table.wave_angstrom > 1.0)  # vacuum - air > 1 A here
+    edges = vac_to_air(np.array([4990.0, 5010.0]) * u.AA).to_value(u.AA)
+    assert table.bin_width_angstrom[1] == pytest.approx(edges[1] - edges[0], abs=1e-3)
+    meta_path = _write(tmp_path, "vac_meta.ecsv", {"wavelength_angstrom": TABLE_WAVE,
+                                                   "flux_erg_s_cm2_angstrom": np.ones(4)},
+                       meta={"wavelength_medium": "vacuum"})
+    assert_allclose(flux_tables.read_flux_table(meta_path).wave_angstrom, expected, atol=1e-3)
+
+
+def test_flux_table_in_f_nu_and_ab_magnitudes(tmp_path):
+    fnu_mjy = np.array([10.0, 12.0, 9.0, 7.0])
+    by_hand_fnu = fnu_mjy * 1e-26 * C_ANGSTROM_S / TABLE_WAVE ** 2  # 1 mJy = 1e-26 cgs
+    astropy_fnu = (fnu_mjy * u.mJy).to_value(u.erg / u.s / u.cm ** 2 / u.AA,
+                                             u.spectral_density(TABLE_WAVE * u.AA))
+    mags = np.array([15.0, 15.5, 16.0, 14.2])
+    by_hand_ab = 10 ** (-0.4 * (mags + AB_ZERO_POINT)) * C_ANGSTROM_S / TABLE_WAVE ** 2
+    cases = [
+        ("fnu_meta.ecsv", {"wavelength_air_angstrom": TABLE_WAVE, "flux": fnu_mjy},
+         {"flux": u.mJy}, by_hand_fnu),
+        ("fnu_name.ecsv", {"wavelength_air_angstrom": TABLE_WAVE, "flux_mjy": fnu_mjy},
+         None, by_hand_fnu),
+        ("fnu_cgs.ecsv", {"wavelength_air_angstrom": TABLE_WAVE,
+                          "flux_erg_s_cm2_hz": fnu_mjy * 1e-26}, None, by_hand_fnu),
+        ("ab_meta.ecsv", {"wavelength_air_angstrom": TABLE_WAVE, "magnitude": mags},
+         {"magnitude": u.ABmag}, by_hand_ab),
+        ("ab_name.ecsv", {"wavelength_air_angstrom": TABLE_WAVE, "mag_ab": mags}, None,
+         by_hand_ab),
+    ]
+    for name, columns, units, truth in cases:
+        table = flux_tables.read_flux_table(_write(tmp_path, name, columns, units=units))
+        assert_allclose(table.flux, truth, rtol=1e-9, err_msg=name)
+    assert_allclose(astropy_fnu, by_hand_fnu, rtol=1e-9)  # the two truths agree
+    assert_allclose((mags * u.ABmag).to_value(u.erg / u.s / u.cm ** 2 / u.AA,
+                                              u.spectral_density(TABLE_WAVE * u.AA)),
+                    by_hand_ab, rtol=1e-9)
+
+
+def test_flux_table_from_fits_with_error_column(tmp_path):
+    path = tmp_path / "std.fits"
+    t = Table({"WAVELENGTH": TABLE_WAVE, "FLUX": np.full(4, 2e-13), "FLUX_ERR": np.full(4, 1e-15)},
+              meta={"MEDIUM": "vacuum", "OBJECT": "TRS-4"})
+    t["WAVELENGTH"].unit = u.AA
+    t["FLUX"].unit = u.erg / u.s / u.cm ** 2 / u.AA
+    t.write(path)
+    table = flux_tables.read_flux_table(path)
+    assert table.info["flux_column"] == "FLUX" and table.info["medium"] == "vacuum"
+    assert_allclose(table.flux, 2e-13)
+
+
+def test_flux_table_problems_list_what_was_found_and_what_is_accepted(tmp_path):
+    bad = [
+        # medium not declared: a wrong guess would shift the star's lines by ~1.4 A
+        ({"wavelength": TABLE_WAVE / 10, "flux_erg_s_cm2_angstrom": np.ones(4)},
+         {"wavelength": u.nm}, {}, r"air or vacuum not declared.*wavelength \[nm\]"),
+        # Vega-like magnitudes (no AB): not a flux density
+        ({"wavelength_air_angstrom": TABLE_WAVE, "mag": np.ones(4)}, {"mag": u.mag}, {},
+         r"flux column mag has unit mag.*not a flux density"),
+        # a flux without any unit
+        ({"wavelength_air_angstrom": TABLE_WAVE, "flux": np.ones(4)}, {}, {},
+         r"flux column flux has unit none"),
+        # two flux columns
+        ({"wavelength_air_angstrom": TABLE_WAVE, "flux_mjy": np.ones(4), "mag_ab": np.ones(4)},
+         {}, {}, r"2 \(\['flux_mjy', 'mag_ab'\]\) flux column"),
+        # air in the name, vacuum in the meta
+        ({"wavelength_air_angstrom": TABLE_WAVE, "flux_mjy": np.ones(4)}, {},
+         {"wavelength_medium": "vacuum"}, r"declared inconsistently"),
+        # a wavelength without unit
+        ({"wavelength_air": TABLE_WAVE, "flux_mjy": np.ones(4)}, {}, {},
+         r"wavelength column wavelength_air has no length unit"),
+    ]
+    for i, (columns, units, meta, message) in enumerate(bad):
+        path = _write(tmp_path, f"bad{i}.ecsv", columns, units=units, meta=meta)
+        with pytest.raises(InputFileError, match=message) as info:
+            flux_tables.read_flux_table(path)
+        text = str(info.value)
+        assert f"bad{i}.ecsv" in text
+        if "inconsistently" not in message:
+            assert "found columns" in text and "accepted:" in text and "AB magnitudes" in text
 
 
 # ---------------------------------------------------------------------------- simulator truth
@@ -557,7 +692,7 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
     regions = (cfg["flux_calibration"]["exclude_regions_angstrom"]
                + cfg["flux_calibration"]["telluric_bands_angstrom"])
     root = Path(__file__).parents[1] / "demo_data"
-    table = standards.read_flux_table(root / "standards" / "TRS-17.ecsv")
+    table = flux_tables.read_flux_table(root / "standards" / "TRS-17.ecsv")
     site = ext.read_extinction_table(root / "tarn_ridge_extinction.ecsv")
     inst = sim.make_instrument()
     rng = np.random.default_rng(17)
@@ -668,7 +803,7 @@ def test_simulated_targets_in_physical_units_with_slit_loss_model(tilt, filt):
     from demo_data import sources as src
 
     root = Path(__file__).parents[1] / "demo_data"
-    table = standards.read_flux_table(root / "standards" / "TRS-17.ecsv")
+    table = flux_tables.read_flux_table(root / "standards" / "TRS-17.ecsv")
     site = ext.read_extinction_table(root / "tarn_ridge_extinction.ecsv")
     inst = sim.make_instrument()
     rng = np.random.default_rng(29)
@@ -857,7 +992,7 @@ def test_simulated_telluric_bands_divided_out():
     from demo_data import sources as src
 
     root = Path(__file__).parents[1] / "demo_data"
-    table = standards.read_flux_table(root / "standards" / "TRS-17.ecsv")
+    table = flux_tables.read_flux_table(root / "standards" / "TRS-17.ecsv")
     site = ext.read_extinction_table(root / "tarn_ridge_extinction.ecsv")
     bands = [[6855.0, 6960.0], [7580.0, 7720.0]]
     inst = sim.make_instrument()

@@ -1,22 +1,20 @@
 """Standard stars: their flux tables, and which of their spectra to use.
 
-A standard's flux table (ECSV, or CSV with ``#`` comments) gives its flux density at
-tabulated wavelengths (point samples) or as means over bins. :func:`table_flux_in_pixels`
+A standard's flux table (read by :mod:`pipeline.fluxcal.flux_tables`) gives its flux
+density at tabulated wavelengths (point samples) or as means over bins. :func:`table_flux_in_pixels`
 integrates it over each spectral pixel. :func:`choose_standard_spectrum` picks the
 spectrum of a standard-star frame that measures the sensitivity, and
 :func:`standard_name_mismatch` says when the frame's OBJECT is not the table's star.
 """
 
 import re
-from dataclasses import dataclass
-from pathlib import Path
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from pipeline.core.checks import as_1d_float, same_shape
-from pipeline.core.errors import InputFileError
 
-__all__ = ["FluxTable", "read_flux_table", "normalise_object_name", "table_flux_in_pixels",
+__all__ = ["FluxTable", "normalise_object_name", "table_flux_in_pixels",
            "signal_to_noise", "choose_standard_spectrum", "standard_name_mismatch", "FLUX_UNIT"]
 
 #: FITS unit string of the calibrated flux density.
@@ -41,6 +39,9 @@ class FluxTable:
         The star's name (from the table's meta data or the file name).
     source : str
         Where the table came from.
+    info : dict
+        How it was read (columns, units, air or vacuum; see
+        :func:`pipeline.fluxcal.flux_tables.read_flux_table`).
     """
 
     wave_angstrom: np.ndarray
@@ -48,6 +49,7 @@ class FluxTable:
     bin_width_angstrom: np.ndarray = None
     name: str = ""
     source: str = ""
+    info: dict = field(default_factory=dict)
 
     def __post_init__(self):
         wave = as_1d_float(self.wave_angstrom, "wave_angstrom")
@@ -73,68 +75,6 @@ class FluxTable:
                 raise ValueError("bins of the flux table overlap; expected bins "
                                  "[centre - width/2, centre + width/2] that do not overlap")
             object.__setattr__(self, "bin_width_angstrom", width)
-
-
-_FLUX_COLUMNS = ("flux_erg_s_cm2_angstrom", "flux_erg_s_cm2_a", "flux_lambda", "flux")
-_WIDTH_COLUMNS = ("bin_width_angstrom", "bandwidth_angstrom", "width_angstrom")
-
-
-def read_flux_table(path):
-    """Read a standard star's flux table (ECSV; or CSV with ``#`` comments).
-
-    Columns: ``wavelength_angstrom`` (air), one flux column
-    (``flux_erg_s_cm2_angstrom``, or ``flux`` with a unit convertible to
-    erg/s/cm2/A), and optionally ``bin_width_angstrom`` (then each flux is the
-    mean over its bin). The star's name is the table's ``name``/``object``
-    meta item or the file stem.
-
-    Raises
-    ------
-    InputFileError
-        Naming the file and the column that is missing or wrong.
-    """
-    from astropy import units as u
-    from astropy.table import Table
-
-    path = Path(path)
-    fmt = "ascii.csv" if path.suffix.lower() == ".csv" else "ascii.ecsv"
-    try:
-        table = (Table.read(path, format=fmt, comment="#") if fmt == "ascii.csv"
-                 else Table.read(path, format=fmt))
-    except (OSError, ValueError, TypeError) as exc:
-        raise InputFileError(path, f"cannot be read as {fmt} ({exc}); expected a standard-star "
-                             "flux table with columns wavelength_angstrom and "
-                             "flux_erg_s_cm2_angstrom") from exc
-    if "wavelength_angstrom" not in table.colnames:
-        raise InputFileError(path, f"column wavelength_angstrom missing (found {table.colnames}); "
-                             "expected air wavelengths in Angstrom")
-    flux_col = next((c for c in _FLUX_COLUMNS if c in table.colnames), None)
-    if flux_col is None:
-        raise InputFileError(path, f"no flux column (found {table.colnames}); expected one of "
-                             f"{list(_FLUX_COLUMNS)} in erg/s/cm2/A")
-    wave = np.asarray(table["wavelength_angstrom"], dtype=float)
-    column = table[flux_col]
-    flux = np.asarray(column, dtype=float)
-    if column.unit is not None:
-        try:
-            flux = (flux * column.unit).to_value(
-                u.Unit(FLUX_UNIT), equivalencies=u.spectral_density(wave * u.AA))
-        except u.UnitConversionError as exc:
-            raise InputFileError(path, f"column {flux_col} has unit {column.unit}, expected a "
-                                 f"flux density convertible to {FLUX_UNIT}") from exc
-    width_col = next((c for c in _WIDTH_COLUMNS if c in table.colnames), None)
-    width = None if width_col is None else np.asarray(table[width_col], dtype=float)
-    order = np.argsort(wave)
-    name = str(table.meta.get("name", table.meta.get("object", path.stem)))
-    source = path.name
-    if "source" in table.meta:
-        source += f" ({table.meta['source']})"
-    try:
-        return FluxTable(wave[order], flux[order],
-                         None if width is None else width[order], name=name, source=source)
-    except ValueError as exc:
-        raise InputFileError(path, f"{exc} (column {flux_col}"
-                             + (f", {width_col}" if width_col else "") + ")") from exc
 
 
 def normalise_object_name(name):

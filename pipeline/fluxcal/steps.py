@@ -22,7 +22,7 @@ from pipeline.fluxcal.products import (LISTING_NAME, read_sensitivity,
                                        write_listing, write_sensitivity)
 from pipeline.fluxcal.setup_sensitivity import (SensitivityOptions, StandardObservation,
                                                 sensitivity_for_setup)
-from pipeline.fluxcal.standards import read_flux_table
+from pipeline.fluxcal.flux_tables import read_flux_table
 
 __all__ = ["fit_sensitivity_file", "flux_calibrate_file", "load_standard", "load_extinction"]
 
