@@ -418,3 +418,14 @@ def test_screening_thresholds_and_sample(tmp_path, instrument):
     assert pixel_problem(np.r_[np.full(6, np.inf), np.arange(4.0)], saturation_adu=None) \
         .startswith("not data: 60%")
     assert pixel_problem(np.array([]), saturation_adu=1.0) is None
+
+
+def test_date_alone_completed_by_the_configured_time_keyword(tmp_path, instrument):
+    folder = good_night(tmp_path)
+    write_raw(folder / "sci_ut.fits", "OBJECT", obj="T", date="2026-03-14",
+              extra={"UTSTART": "02:30:00", "UT": "09:00:00"})
+    inv, _ = inventory_quiet(folder, {**instrument,
+                                      "keywords": {**instrument["keywords"], "time_obs": "UTSTART"}})
+    assert inv.record("sci_ut").mjd == pytest.approx(Time("2026-03-14T02:30:00").mjd, abs=1e-9)
+    inv, _ = inventory_quiet(folder, instrument)           # not configured: UT is tried
+    assert inv.record("sci_ut").mjd == pytest.approx(Time("2026-03-14T09:00:00").mjd, abs=1e-9)

@@ -216,7 +216,8 @@ def draft_instrument(raw_dir, *, name=None):
     # -- keywords -------------------------------------------------------------------------
     w.key(2, "keywords", block=True, comment="header keywords the pipeline reads")
     roles = [("object", "object"), ("exposure_time_s", "exposure_time_s"),
-             ("date_obs", "date_obs"), ("airmass", "airmass"), ("ra_deg", "ra_deg"),
+             ("date_obs", "date_obs"), ("time_obs", "time_obs"), ("airmass", "airmass"),
+             ("ra_deg", "ra_deg"),
              ("dec_deg", "dec_deg"), ("grating", "grating"),
              ("grating_tilt_deg", "grating_tilt_deg"), ("slit_width_arcsec", "slit_width_arcsec"),
              ("binning", "binning"), ("filter", "filter"), ("lamps", "lamps")]
@@ -233,8 +234,8 @@ def draft_instrument(raw_dir, *, name=None):
                         "(observing.airmass: computed)")
         if role in ("ra_deg", "dec_deg") and guess.value:
             comment += "; format: " + _coordinate_format(survey, guess.value)
-        if role == "date_obs" and guess.value and g["time_obs"].value:
-            comment += f"; a date alone is completed by {g['time_obs'].value}"
+        if role == "time_obs" and guess.value:
+            comment += "; completes a DATE-OBS that holds a date alone"
         if guess.value is None:
             if key in required:
                 w.key(4, key, None, comment + "; name the keyword", todo=True)

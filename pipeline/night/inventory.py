@@ -326,6 +326,13 @@ def _id_values(header, keywords, roles, *, path):
     return values
 
 
+def _time_of_day(header, keywords):
+    """The separate start-time value (``keywords.time_obs``, else UT, else TIME-OBS)."""
+    if keywords.get("time_obs"):
+        return header.get(keywords["time_obs"])
+    return header.get("UT") or header.get("TIME-OBS")
+
+
 def _frame_type(header, instrument, *, path):
     keyword = instrument["frame_type_keyword"]
     value = header.get(keyword)
@@ -411,7 +418,7 @@ def _read_record(path, frame_id, instrument, screening=None):
         if base["date_obs"]:
             base["mjd"] = hdr.date_obs_to_mjd(base["date_obs"], path=path,
                                               keyword=kw.get("date_obs", "DATE-OBS"),
-                                              time_text=header.get("UT") or header.get("TIME-OBS"))
+                                              time_text=_time_of_day(header, kw))
         elif frame_type in ("arc", "standard", "science"):
             hdr.header_str(header, kw.get("date_obs", "DATE-OBS"), path=path)  # raises
         if frame_type in _TARGETS and not base["object"]:
