@@ -18,7 +18,8 @@ from astropy.table import Table
 from astropy.time import Time
 
 from pipeline.core.errors import InputFileWarning
-from pipeline.night.inventory import frame_id_from_path, take_inventory, write_night_log_file
+from pipeline.night.inventory import frame_id_from_path, take_inventory
+from pipeline.night.steps import write_night_log_file
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -429,3 +430,43 @@ def test_date_alone_completed_by_the_configured_time_keyword(tmp_path, instrumen
     assert inv.record("sci_ut").mjd == pytest.approx(Time("2026-03-14T02:30:00").mjd, abs=1e-9)
     inv, _ = inventory_quiet(folder, instrument)           # not configured: UT is tried
     assert inv.record("sci_ut").mjd == pytest.approx(Time("2026-03-14T09:00:00").mjd, abs=1e-9)
+
+
+def test_night_log_records_the_airmass_used(tmp_path, instrument, caplog):
+    import astropy.units as u
+    from astropy.coordinates import AltAz, EarthLocation, SkyCoord
+    from astropy.utils import iers
+
+    folder = good_night(tmp_path / "raw")
+    site = instrument["site"]
+    where = EarthLocation.from_geodetic(lon=site["longitude_deg"] * u.deg,
+                                        lat=site["latitude_deg"] * u.deg, height=site["height_m"] * u.m)
+    start = Time("2026-03-14T02:40:00", scale="utc")
+    target = SkyCoord(150.0 * u.deg, -30.0 * u.deg)
+    with iers.conf.set_temp("auto_download", False), iers.conf.set_temp("auto_max_age", None):
+        alt = target.transform_to(AltAz(obstime=start + 600 * u.s, location=where)).alt
+    mid_secz = float(1 / np.sin(alt.radian))     # astropy, mid-exposure, plane-parallel
+    # sexagesimal coordinates; the header airmass is 0.05 off the truth
+    write_raw(folder / "sci_sky.fits", "OBJECT", obj="Sky target", date=start.isot,
+              exptime=1200.0, extra={"RA": "10:00:00", "DEC": "-30:00:00",
+                                     "AIRMASS": round(mid_secz + 0.05, 4)})
+    log = tmp_path / "night_log.ecsv"
+    with caplog.at_level("WARNING", logger="pipeline.night_log"):
+        write_night_log_file(raw_frames=[], night_log=str(log), raw_dir=str(folder),
+                             instrument=instrument, observing={"airmass": "computed"})
+    t = Table.read(log, format="ascii.ecsv")
+    row = t[list(t["frame_id"]).index("sci_sky")]
+    assert row["airmass_source"] == "computed"
+    # exposure mean vs the mid-exposure sec z of astropy: within 0.005 at X ~ 1.1-1.5
+    assert row["airmass_computed"] == pytest.approx(mid_secz, abs=0.005)
+    assert row["airmass_used"] == row["airmass_computed"]
+    assert any("sci_sky: header AIRMASS" in r.getMessage() and "differs" in r.getMessage()
+               for r in caplog.records)
+    # no coordinates: the header value, and why
+    sci1 = t[list(t["frame_id"]).index("sci1")]
+    assert sci1["airmass_source"] == "header" and sci1["airmass_used"] == 1.2
+    assert any("sci1: airmass not computed: RA, DEC missing" in r.getMessage()
+               for r in caplog.records)
+    # frames that are not targets get no airmass choice
+    assert t[list(t["frame_id"]).index("f1")]["airmass_source"] == "-"
+    assert t.meta["iers_table"].startswith("astropy-iers-data")

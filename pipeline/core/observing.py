@@ -1,5 +1,8 @@
 """Observing circumstances of a frame: target coordinates, times, airmass, velocity corrections.
 
+Longer than 500 lines because it is one topic whose functions share the offline IERS
+context and the keyword-naming conventions; about half of it is numpydoc.
+
 Pure functions on header values (never on a whole config): every instrument writes
 these a little differently, so each function takes the values and the keyword names
 (for the messages) and returns astropy objects or small frozen dataclasses.

@@ -39,257 +39,27 @@ import math
 import re
 import warnings
 from collections import Counter
-from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from pipeline.core import headers as hdr
 from pipeline.core.errors import InputFileError, InputFileWarning
+from pipeline.night.records import FRAME_TYPES, TARGET_TYPES, FrameRecord, NightInventory, \
+    replace_record
 from pipeline.night.screening import pixel_problem, read_row_sample
 from pipeline.night.setups import group_setups, setup_value
 
-__all__ = ["FrameRecord", "NightInventory", "take_inventory", "write_night_log_file",
-           "frame_id_from_path", "find_files", "FRAME_TYPES"]
+__all__ = ["FrameRecord", "NightInventory", "take_inventory", "assign_ids", "frame_id_from_path",
+           "find_files", "inventory_of", "FRAME_TYPES", "SCREENING_DEFAULTS"]
 
-FRAME_TYPES = ("bias", "flat", "arc", "standard", "science")
 #: the ``inventory`` config section's defaults (config/schema.yaml)
 SCREENING_DEFAULTS = {"sample_rows": 16, "max_saturated_fraction": 0.5,
                       "max_nonfinite_fraction": 0.5}
-_TARGETS = ("standard", "science")
+_TARGETS = TARGET_TYPES
 _EXTENSIONS = (".fits.gz", ".fit.gz", ".fts.gz", ".fits.fz", ".fits", ".fit", ".fts", ".gz", ".fz")
 
 
-@dataclass(frozen=True)
-class FrameRecord:
-    """What the inventory knows about one raw file (from its header).
-
-    Attributes
-    ----------
-    frame_id : str
-        Raw file name without extension(s), sanitised to ``[A-Za-z0-9._-]``;
-        unique in the night.
-    path : str
-        Path of the raw file.
-    frame_type : str
-        'bias', 'flat', 'arc', 'standard', 'science', 'ignored' or 'unknown'.
-    setup : str
-        Setup id built from ``instrument.setup_keywords`` ('' for biases and
-        when not known).
-    readout : str
-        Readout-mode id from ``instrument.readout_keywords`` ('' when not known).
-    object : str
-        Object name ('' when missing).
-    exptime_s : float, s
-        Exposure time (nan when missing).
-    date_obs : str
-        DATE-OBS as written in the header ('' when missing).
-    mjd : float, d
-        Modified Julian Date (UTC) of the start of exposure (nan when missing).
-    status : str
-        'ok', 'ignored' or 'rejected'.
-    reason : str
-        '' for ok; why the file was ignored or rejected otherwise.
-    airmass : float
-        nan when missing.
-    lamps : str
-        Arc lamps switched on ('' when missing).
-    shape : tuple of int
-        ``(ny, nx)`` of the raw pixel array; ``()`` when unreadable.
-    binning : tuple of int
-        Binning along FITS axes 1 and 2; ``()`` when not known.
-    id_values : tuple
-        ``(readout values, setup values)``: keyword -> header value as read, from which
-        :func:`assign_ids` groups the night (``()`` when not read; setup values None for
-        biases).
-    """
-
-    frame_id: str
-    path: str
-    frame_type: str
-    setup: str
-    readout: str
-    object: str
-    exptime_s: float
-    date_obs: str
-    mjd: float
-    status: str
-    reason: str
-    airmass: float = math.nan
-    lamps: str = ""
-    shape: tuple = ()
-    binning: tuple = ()
-    id_values: tuple = field(default=(), compare=False, repr=False)
-
-    @property
-    def ok(self):
-        return self.status == "ok"
-
-
-def _replace(record, **changes):
-    fields_ = asdict(record)
-    fields_.update(changes)
-    return FrameRecord(**fields_)
-
-
 def _reject(record, reason, status="rejected"):
-    return _replace(record, status=status, reason=reason)
-
-
-@dataclass(frozen=True)
-class NightInventory:
-    """All frames of a night with the calibration associations.
-
-    Attributes
-    ----------
-    records : tuple of FrameRecord
-        One record per raw file, sorted by frame id.
-    """
-
-    records: tuple
-
-    def __post_init__(self):
-        index = {}
-        for rec in self.records:
-            if rec.frame_id in index:
-                raise ValueError(f"frame id {rec.frame_id!r} occurs twice in the inventory")
-            index[rec.frame_id] = rec
-        object.__setattr__(self, "_index", index)
-
-    # -- selections -----------------------------------------------------------------
-    def frames(self, frame_type=None, *, setup=None, status="ok"):
-        """Records of one frame type (all when None), setup and status (None = any)."""
-        return [r for r in self.records
-                if (frame_type is None or r.frame_type == frame_type)
-                and (setup is None or r.setup == setup)
-                and (status is None or r.status == status)]
-
-    def record(self, frame_id):
-        """The record of ``frame_id``.
-
-        Raises
-        ------
-        KeyError
-            When the night has no frame of that id.
-        """
-        try:
-            return self._index[frame_id]
-        except KeyError:
-            raise KeyError(f"no frame {frame_id!r} in the night inventory") from None
-
-    def setups(self):
-        """Setups that have usable standard or science frames (sorted)."""
-        return sorted({r.setup for r in self.records if r.ok and r.frame_type in _TARGETS})
-
-    def readouts(self):
-        """Readout modes that have usable biases (sorted)."""
-        return sorted({r.readout for r in self.frames("bias")})
-
-    def calibrated_frames(self):
-        """Usable arcs, standards and science frames of the setups in :meth:`setups`."""
-        used = set(self.setups())
-        return [r for r in self.records if r.ok and r.setup in used
-                and r.frame_type in ("arc", "standard", "science")]
-
-    def setup_readout(self, setup):
-        """Readout id of the frames of ``setup`` (the one of its flats)."""
-        for rec in self.flats_for(setup) + self.frames(None, setup=setup):
-            if rec.readout:
-                return rec.readout
-        raise KeyError(f"setup {setup!r} has no usable frame in the night inventory")
-
-    def bias_for(self, frame_id):
-        """Readout id whose master bias calibrates ``frame_id``.
-
-        Raises
-        ------
-        KeyError
-            When the frame is unknown or its readout mode has no usable bias.
-        """
-        rec = self.record(frame_id)
-        if rec.readout not in self.readouts():
-            raise KeyError(f"frame {frame_id!r}: readout mode {rec.readout!r} has no usable bias")
-        return rec.readout
-
-    def flats_for(self, setup):
-        """Usable flats of ``setup``."""
-        return self.frames("flat", setup=setup)
-
-    def arcs_for(self, setup):
-        """Usable arcs of ``setup``."""
-        return self.frames("arc", setup=setup)
-
-    def standards_for(self, setup):
-        """Usable standard-star frames of ``setup``."""
-        return self.frames("standard", setup=setup)
-
-    def science_for(self, setup):
-        """Usable science frames of ``setup``."""
-        return self.frames("science", setup=setup)
-
-    def nearest_arc(self, frame_id):
-        """The arc of the same setup nearest in time to ``frame_id`` (earlier on a tie).
-
-        Raises
-        ------
-        KeyError
-            When the frame is unknown or its setup has no usable arc.
-        """
-        rec = self.record(frame_id)
-        arcs = self.arcs_for(rec.setup)
-        if not arcs:
-            raise KeyError(f"frame {frame_id!r}: setup {rec.setup!r} has no usable arc")
-        if rec.frame_type == "arc":
-            return rec
-
-        def distance(arc):
-            gap = abs(arc.mjd - rec.mjd)
-            return (gap if math.isfinite(gap) else math.inf,
-                    arc.mjd if math.isfinite(arc.mjd) else math.inf, arc.frame_id)
-
-        return min(arcs, key=distance)
-
-    def problems(self):
-        """One line per ignored or rejected file: ``'<path>: <status>: <reason>'``.
-
-        The same text as the :class:`~pipeline.core.errors.InputFileWarning` of each;
-        for printing where Python warnings are not shown (Snakemake hides the
-        warnings raised while it parses the Snakefile).
-        """
-        return [f"{r.path}: {r.status}: {r.reason}" for r in self.records if r.status != "ok"]
-
-    def to_table(self):
-        """The night log as an astropy Table (one row per file)."""
-        from astropy.table import Table
-
-        names = ["frame_id", "path", "frame_type", "setup", "readout", "object", "exptime_s",
-                 "date_obs", "mjd", "airmass", "lamps", "shape", "status", "reason",
-                 "bias", "nearest_arc"]
-        rows = []
-        for r in self.records:
-            bias = arc = ""
-            if r.ok and r.frame_type != "bias":
-                try:
-                    bias = self.bias_for(r.frame_id)
-                except KeyError:
-                    pass
-                if r.frame_type in _TARGETS:
-                    try:
-                        arc = self.nearest_arc(r.frame_id).frame_id
-                    except KeyError:
-                        pass
-            rows.append((r.frame_id, r.path, r.frame_type, r.setup, r.readout, r.object,
-                         r.exptime_s, r.date_obs, r.mjd, r.airmass, r.lamps,
-                         "x".join(str(n) for n in r.shape), r.status, r.reason, bias, arc))
-        table = Table(rows=rows or None, names=names,
-                      dtype=[str, str, str, str, str, str, float, str, float, float, str,
-                             str, str, str, str, str])
-        table["exptime_s"].unit = "s"
-        table["mjd"].unit = "d"
-        table.meta["comments"] = [
-            "Night log: one row per raw file; status ok / ignored / rejected with the reason.",
-            "shape is ny x nx of the raw pixels; bias is the readout id of the master bias;",
-            "nearest_arc is the arc of the same setup nearest in time (standards, science).",
-        ]
-        return table
+    return replace_record(record, status=status, reason=reason)
 
 
 # -- id helpers ---------------------------------------------------------------------
@@ -379,6 +149,8 @@ def _read_record(path, frame_id, instrument, screening=None):
     base["object"] = hdr.header_str(header, kw.get("object"), default="")
     base["date_obs"] = hdr.header_str(header, kw.get("date_obs"), default="")
     base["lamps"] = hdr.header_str(header, kw.get("lamps"), default="")
+    base["ra"] = hdr.header_str(header, kw.get("ra_deg"), default="")
+    base["dec"] = hdr.header_str(header, kw.get("dec_deg"), default="")
     if kw.get("airmass") and header.get(kw["airmass"]) is not None:
         try:
             base["airmass"] = hdr.header_float(header, kw["airmass"], path=path)
@@ -543,12 +315,13 @@ def assign_ids(records, instrument):
                                   (1, "setup", instrument.get("setup_keywords", []))):
         rows = [r.id_values[index] if r.id_values else None for r in records]
         groups = group_setups(rows, keywords, roles=roles, tolerances=tolerances)
-        out = [_replace(rec, **{name: ident}) for rec, ident in zip(out, groups.ids)]
+        out = [replace_record(rec, **{name: ident}) for rec, ident in zip(out, groups.ids)]
         notes.extend(groups.notes)
     return out, notes
 
 
-def _inventory_of(paths, frame_ids, instrument, screening=None):
+def inventory_of(paths, frame_ids, instrument, screening=None):
+    """The inventory of the given files with the given frame ids (see :func:`take_inventory`)."""
     records = [_read_record(p, fid, instrument, screening) for p, fid in zip(paths, frame_ids)]
     records, notes = assign_ids(records, instrument)
     for note in notes:
@@ -558,7 +331,7 @@ def _inventory_of(paths, frame_ids, instrument, screening=None):
     return NightInventory(tuple(records))
 
 
-def take_inventory(raw_dir, instrument, screening=None):
+def take_inventory(raw_dir, instrument, screening=None, *, also=()):
     """Inventory a night's raw folder from the headers (and a few pixel rows per frame).
 
     Parameters
@@ -572,6 +345,9 @@ def take_inventory(raw_dir, instrument, screening=None):
         ``max_saturated_fraction``, ``max_nonfinite_fraction``; defaults
         :data:`SCREENING_DEFAULTS`): frames that are not data are rejected
         (see :mod:`pipeline.night.screening`).
+    also : list of str
+        Raw files to inventory too when the folder scan misses them (the files a
+        workflow rule depends on); their ids get ``-x`` appended when taken.
 
     Returns
     -------
@@ -590,58 +366,20 @@ def take_inventory(raw_dir, instrument, screening=None):
         raise InputFileError(raw_dir, "raw_dir is not a folder; expected the folder of the "
                              "night's raw FITS frames (set raw_dir in the config)")
     paths = find_files(raw_dir, instrument.get("file_patterns", ["*.fits", "*.fit", "*.fits.gz"]))
-    inventory = _inventory_of(paths, _unique_ids(paths), instrument, screening)
+    frame_ids = _unique_ids(paths)
+    known = {p.resolve() for p in paths}
+    taken = set(frame_ids)
+    for path in ([also] if isinstance(also, (str, Path)) else list(also)):
+        if Path(path).resolve() in known:
+            continue
+        fid = frame_id_from_path(path)
+        while fid in taken:
+            fid += "-x"
+        taken.add(fid)
+        known.add(Path(path).resolve())
+        paths.append(Path(path))
+        frame_ids.append(fid)
+    inventory = inventory_of(paths, frame_ids, instrument, screening)
     for line in inventory.problems():
         warnings.warn(line, InputFileWarning, stacklevel=2)
     return inventory
-
-
-def write_night_log_file(*, raw_frames, night_log, raw_dir, instrument, screening=None):
-    """Write the night log (ECSV, one row per raw file) of ``raw_dir``.
-
-    Parameters
-    ----------
-    raw_frames : list of str
-        The raw files the rule depends on (so a changed file reruns it); files
-        among them that the folder scan misses are inventoried too.
-    night_log : str
-        Output ECSV path.
-    raw_dir : str
-        Folder of the night's raw frames.
-    instrument : dict
-        The ``instrument`` config section.
-    screening : dict or None
-        The ``inventory`` config section (see :func:`take_inventory`).
-    """
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", InputFileWarning)
-        inventory = take_inventory(raw_dir, instrument, screening)
-    import logging
-    log = logging.getLogger("pipeline.night_log")
-    for w in caught:
-        log.warning("%s", w.message)
-    known = {Path(r.path).resolve() for r in inventory.records}
-    extra = [p for p in (raw_frames if isinstance(raw_frames, (list, tuple)) else [raw_frames])
-             if Path(p).resolve() not in known]
-    if extra:
-        ids = {r.frame_id for r in inventory.records}
-        paths = [Path(r.path) for r in inventory.records]
-        frame_ids = [r.frame_id for r in inventory.records]
-        for path in extra:
-            fid = frame_id_from_path(path)
-            while fid in ids:
-                fid += "-x"
-            ids.add(fid)
-            paths.append(Path(path))
-            frame_ids.append(fid)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", InputFileWarning)
-            inventory = _inventory_of(paths, frame_ids, instrument, screening)
-    table = inventory.to_table()
-    Path(night_log).parent.mkdir(parents=True, exist_ok=True)
-    table.write(night_log, format="ascii.ecsv", overwrite=True)
-    counts = Counter(r.status for r in inventory.records)
-    log.info("night log %s: %d files (%s)", night_log, len(inventory.records),
-             ", ".join(f"{n} {s}" for s, n in sorted(counts.items())))
-    return night_log
-

@@ -9,6 +9,7 @@ rule night_log:
         raw_dir=lambda wildcards: str(RAW),
         instrument=INSTRUMENT,
         screening=config.get("inventory"),
+        observing=config.get("observing"),
     log:
         log_path("night_log", "night_log"),
     script:

@@ -30,7 +30,7 @@ __all__ = ["STEPS", "run_rule"]
 
 #: rule name -> (module, adapter function)
 STEPS = {
-    "night_log": ("pipeline.night.inventory", "write_night_log_file"),
+    "night_log": ("pipeline.night.steps", "write_night_log_file"),
     "master_bias": ("pipeline.ccd.calibrate", "make_master_bias_file"),
     "master_flat": ("pipeline.ccd.calibrate", "make_master_flat_file"),
     "calibrate_frame": ("pipeline.ccd.calibrate", "calibrate_frame_file"),
