@@ -2,7 +2,7 @@
 
 Compares, in one run and on the same files,
 
-* ``pipeline``: :func:`pipeline.ccd.calibrate.make_master_bias_file` (overscan per row,
+* ``pipeline``: :func:`pipeline.ccd.steps.make_master_bias_file` (overscan per row,
   block-wise sigma-clipped mean, read noise from pair differences, FITS
   output with variance and mask), and
 * ``median``: the plain approach, every frame read into one stack and
@@ -77,7 +77,7 @@ def worker(method, paths, out_dir):
         import astropy.table  # noqa: F401
         from astropy.io import fits  # noqa: F401
 
-        import pipeline.ccd.calibrate as ccd
+        import pipeline.ccd.steps as ccd
         import pipeline.core.frames  # noqa: F401
         base = _rss_mb()
         instrument = {"pixel_extension": 0,

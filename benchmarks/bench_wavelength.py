@@ -36,7 +36,8 @@ def main(argv=None):
     import yaml
     import demo_data.simulate as sim
     from pipeline.wavelength import grating as gr
-    from pipeline.wavelength import solve as ws
+    from pipeline.wavelength.solve import solve_wavelength
+    from pipeline.wavelength.steps import solve_wavelength_file
     from pipeline.wavelength.arclines import extract_band, find_arc_lines
     from pipeline.wavelength.linelists import read_line_list, species_for_lamps
 
@@ -80,7 +81,7 @@ def main(argv=None):
         band = extract_band(data, variance, mask, half_width_rows=half)
         found = find_arc_lines(band.flux, band.variance, mask=band.mask, **band_options)
         t_found = time.perf_counter()
-        solution = ws.solve_wavelength(data, variance, mask, found, catalogue, nominal,
+        solution = solve_wavelength(data, variance, mask, found, catalogue, nominal,
                                        reference_row=0.5 * sum(band.rows), **solve_options)
         t_solved = time.perf_counter()
         wave_map = solution.wavelength_map()
@@ -114,7 +115,7 @@ def main(argv=None):
 
     from astropy.io import fits
 
-    from pipeline.wavelength.arclines import find_arc_lines_file
+    from pipeline.wavelength.steps import find_arc_lines_file
     from pipeline.core.frames import Frame, write_frame
 
     with tempfile.TemporaryDirectory() as tmp:
@@ -124,7 +125,7 @@ def main(argv=None):
         t1 = time.perf_counter()
         find_arc_lines_file(arc=str(path), lines=f"{tmp}/lines.ecsv", **lines_cfg)
         t2 = time.perf_counter()
-        ws.solve_wavelength_file(
+        solve_wavelength_file(
             arc=str(path), lines=f"{tmp}/lines.ecsv", solution=f"{tmp}/solution.fits",
             qa=f"{tmp}/qa.ecsv", plot_lines=f"{tmp}/a.png", plot_residuals=f"{tmp}/b.png",
             plot_residual_map=f"{tmp}/c.png", plot_dispersion=f"{tmp}/d.png",

@@ -17,7 +17,8 @@ from scipy.special import ndtr
 
 from pipeline.core import maskbits
 from pipeline.wavelength.arclines import (LineFlag, continuum_level, extract_band, find_arc_lines,
-                               find_arc_lines_file, read_lines_table)
+                                          read_lines_table)
+from pipeline.wavelength.steps import find_arc_lines_file
 from pipeline.core.errors import ArcQualityWarning, InputFileError
 from pipeline.core.frames import Frame, write_frame
 

@@ -1,4 +1,4 @@
-"""Tests of pipeline.ccd.calibrate against independent truths.
+"""Tests of the CCD step (pipeline.ccd) against independent truths.
 
 * Simulator truth (demo_data, which never imports pipeline): read noise, gain,
   bias levels, pixel response, cosmic-ray deposits, saturation and the raw ->
@@ -20,7 +20,16 @@ import yaml
 from astropy.io import fits
 from scipy.ndimage import binary_dilation, label, maximum_position
 
-from pipeline.ccd import calibrate as ccd
+from pipeline.ccd.bias import combine_bias
+from pipeline.ccd.flat_response import normalise_flat
+from pipeline.ccd.gain import measure_gain
+from pipeline.ccd.geometry import Orientation
+from pipeline.ccd.options import (BIAS_DEFAULTS, CALIBRATION_DEFAULTS, FLAT_DEFAULTS,
+                                  OVERSCAN_DEFAULTS, overscan_kwargs)
+from pipeline.ccd.overscan import correct_and_trim, fit_overscan
+from pipeline.ccd.stacking import clipped_mean
+from pipeline.ccd.steps import calibrate_frame_file, make_master_bias_file, make_master_flat_file
+from pipeline.core.checks import merge_options
 from pipeline.core.errors import CalibrationError, CalibrationQualityWarning, ConfigError
 from pipeline.core.frames import read_frame
 from pipeline.core import headers as hdr
@@ -81,16 +90,16 @@ def night(tmp_path_factory):
     instrument = ccd_instrument()
     with warnings.catch_warnings():
         warnings.simplefilter("error", CalibrationQualityWarning)   # none expected here
-        ccd.make_master_bias_file(frames=[paths[f"bias{i}"] for i in range(5)],
+        make_master_bias_file(frames=[paths[f"bias{i}"] for i in range(5)],
                                   master=str(out / "bias.fits"), qa=str(out / "bias_qa.ecsv"),
                                   instrument=instrument, overscan=CONFIG["overscan"],
                                   bias=CONFIG["bias"])
-        ccd.make_master_flat_file(frames=[paths[f"flat{i}"] for i in range(3)],
+        make_master_flat_file(frames=[paths[f"flat{i}"] for i in range(3)],
                                   bias=str(out / "bias.fits"), master=str(out / "flat.fits"),
                                   qa=str(out / "flat_qa.ecsv"), instrument=instrument,
                                   overscan=CONFIG["overscan"], flat=PIXEL_RESPONSE_FLAT)
         for key, ftype in (("sci", "science"), ("bright", "standard"), ("arc", "arc")):
-            ccd.calibrate_frame_file(raw=paths[key], bias=str(out / "bias.fits"),
+            calibrate_frame_file(raw=paths[key], bias=str(out / "bias.fits"),
                                      flat=str(out / "flat.fits"),
                                      calibrated=str(out / f"{key}_cal.fits"), frame_type=ftype,
                                      instrument=instrument, overscan=CONFIG["overscan"],
@@ -129,11 +138,11 @@ def test_overscan_residual_level(night):
     """Overscan-corrected biases minus the true bias: level < 0.1 e- rms."""
     det = night["inst"].detector
     data_sec, ov_sec = parse_section(det.datasec), parse_section(det.biassec)
-    opts = ccd._overscan_kwargs(CONFIG["overscan"])
+    opts = overscan_kwargs(CONFIG["overscan"])
     levels, row_rms = [], []
     for i in range(5):
         frame = night["frames"][f"bias{i}"]
-        corrected, fit = ccd.correct_and_trim(frame.raw, data_section=data_sec,
+        corrected, fit = correct_and_trim(frame.raw, data_section=data_sec,
                                               overscan_section=ov_sec, overscan_options=opts)
         # truth: the noise-free bias of this readout (demo_data truth.info['bias_adu'])
         truth = frame.truth.info["bias_adu"][data_sec.slices]
@@ -284,7 +293,7 @@ def test_product_files(night):
     assert {h["CALIB01"], h["CALIB02"]} == {"bias.fits", "flat.fits"}
     # the recorded mapping back to raw pixels agrees with the simulator's
     # canonical[y, x] = raw[nx - 1 - x, y] (demo_data/README.md)
-    o = ccd.Orientation(h["ORIENT_T"], h["ORIENT_X"], h["ORIENT_Y"])
+    o = Orientation(h["ORIENT_T"], h["ORIENT_X"], h["ORIENT_Y"])
     ny, nx = ccddata.shape
     row, col = o.to_raw(17, 300, shape=(ny, nx), trim_y0=h["TRIM_Y0"], trim_x0=h["TRIM_X0"])
     assert (row, col) == (nx - 1 - 300, 17)
@@ -300,12 +309,12 @@ def test_read_noise_warning_and_fallback(night, tmp_path):
     paths = [night["paths"][f"bias{i}"] for i in range(4)]
     instrument = ccd_instrument(read_noise_e={"keyword": None, "value": 8.0})
     with pytest.warns(CalibrationQualityWarning, match="read noise"):
-        ccd.make_master_bias_file(frames=paths, master=str(tmp_path / "b.fits"),
+        make_master_bias_file(frames=paths, master=str(tmp_path / "b.fits"),
                                   qa=str(tmp_path / "b.ecsv"), instrument=instrument)
     header = fits.getheader(tmp_path / "b.fits")
     assert header["RNOK"] is False and header["RNCONF"] == 8.0
     with pytest.warns(CalibrationQualityWarning, match="not measured"):
-        ccd.make_master_bias_file(frames=paths[:1], master=str(tmp_path / "b1.fits"),
+        make_master_bias_file(frames=paths[:1], master=str(tmp_path / "b1.fits"),
                                   qa=str(tmp_path / "b1.ecsv"), instrument=ccd_instrument())
     assert fits.getheader(tmp_path / "b1.fits")["NFRAMES"] == 1
 
@@ -316,12 +325,12 @@ def test_master_shape_mismatch_names_files(night, tmp_path):
     cut = Frame(small.data[:, :500], small.variance[:, :500], small.mask[:, :500], small.header)
     write_frame(cut, tmp_path / "cut_bias.fits")
     with pytest.raises(CalibrationError, match="cut_bias.fits"):
-        ccd.calibrate_frame_file(raw=night["paths"]["arc"], bias=str(tmp_path / "cut_bias.fits"),
+        calibrate_frame_file(raw=night["paths"]["arc"], bias=str(tmp_path / "cut_bias.fits"),
                                  flat=str(night["out"] / "flat.fits"),
                                  calibrated=str(tmp_path / "x.fits"), frame_type="arc",
                                  instrument=ccd_instrument())
     with pytest.raises(ConfigError, match="sigclp"):
-        ccd.calibrate_frame_file(raw=night["paths"]["arc"], bias=str(night["out"] / "bias.fits"),
+        calibrate_frame_file(raw=night["paths"]["arc"], bias=str(night["out"] / "bias.fits"),
                                  flat=str(night["out"] / "flat.fits"),
                                  calibrated=str(tmp_path / "x.fits"), frame_type="arc",
                                  instrument=ccd_instrument(),
@@ -348,9 +357,9 @@ def test_orientation_all_combinations(axis, increases):
         raw = np.concatenate([np.zeros((n_disp, n_os)), data], axis=1) + 50.0   # prescan
         data_sec = parse_section(f"[{n_os + 1}:{n_os + n_slit},1:{n_disp}]")
         ov_sec = parse_section(f"[1:{n_os},1:{n_disp}]")
-    o = ccd.Orientation.from_instrument(dispersion_axis=axis,
+    o = Orientation.from_instrument(dispersion_axis=axis,
                                         wavelength_increases_with_pixel=increases)
-    canon, fit = ccd.correct_and_trim(raw, data_section=data_sec, overscan_section=ov_sec,
+    canon, fit = correct_and_trim(raw, data_section=data_sec, overscan_section=ov_sec,
                                       orientation=o, overscan_options={"method": "per_row"})
     expected = 1000.0 * np.arange(n_disp)[None, :] + s[:, None]   # analytic canonical
     np.testing.assert_allclose(canon, expected, atol=1e-3)
@@ -366,25 +375,25 @@ def test_overscan_methods_analytic(rng):
     rows = np.arange(2000)
     cubic = 1000 + 3e-3 * rows - 2e-9 * rows ** 3               # analytic level, ADU
     ov = cubic[:, None] + rng.normal(0, 2.0, (2000, 40))
-    poly = ccd.fit_overscan(ov, method="polynomial", polynomial_order=3)
+    poly = fit_overscan(ov, method="polynomial", polynomial_order=3)
     # a 4-parameter fit to 2000 rows of noise 2/sqrt(40): error ~ 0.32*sqrt(4/2000)
     assert np.sqrt(np.mean((poly.level_adu - cubic) ** 2)) < 0.03
     step = np.where(rows < 1000, 1000.0, 1005.0)
-    per_row = ccd.fit_overscan(step[:, None] + rng.normal(0, 2.0, (2000, 40)), method="per_row")
+    per_row = fit_overscan(step[:, None] + rng.normal(0, 2.0, (2000, 40)), method="per_row")
     assert np.abs(per_row.level_adu - step).max() < 2.0          # follows the step
     bumpy = cubic.copy()
     bumpy[500] += 300.0                                         # one deviant row
-    smooth = ccd.fit_overscan(bumpy[:, None] + rng.normal(0, 2.0, (2000, 40)), method="smooth",
+    smooth = fit_overscan(bumpy[:, None] + rng.normal(0, 2.0, (2000, 40)), method="smooth",
                               smooth_window_rows=51)
     assert abs(smooth.level_adu[500] - cubic[500]) < 0.5
     assert smooth.info["n_rejected_rows"] >= 1
-    med = ccd.fit_overscan(ov, method="per_row", row_statistic="median")
-    mean = ccd.fit_overscan(ov, method="per_row", row_statistic="clipped_mean")
+    med = fit_overscan(ov, method="per_row", row_statistic="median")
+    mean = fit_overscan(ov, method="per_row", row_statistic="clipped_mean")
     # median of 40 Gaussian values is ~1.25x noisier than the mean (analytic: sqrt(pi/2))
     ratio = np.std(med.level_adu - cubic) / np.std(mean.level_adu - cubic)
     assert 1.1 < ratio < 1.4
     with pytest.raises(ValueError, match="`method`"):
-        ccd.fit_overscan(ov, method="spline")
+        fit_overscan(ov, method="spline")
 
 
 def test_clipped_mean_matches_astropy(rng):
@@ -394,7 +403,7 @@ def test_clipped_mean_matches_astropy(rng):
     stack = (truth + rng.normal(0, sigma_adu, (n, ny, nx))).astype(np.float32)
     hits = rng.random(stack.shape) < 0.02
     stack[hits] += rng.uniform(50, 3000, hits.sum()).astype(np.float32)
-    result = ccd.combine_bias(list(stack), clip_sigma=3.0, block_rows=7)
+    result = combine_bias(list(stack), clip_sigma=3.0, block_rows=7)
     ref = sigma_clip(stack, sigma=3.0, maxiters=5, axis=0, cenfunc="median",
                      stdfunc="mad_std").mean(axis=0).filled(np.nan)
 
@@ -408,7 +417,7 @@ def test_clipped_mean_matches_astropy(rng):
     assert rms(result.bias_adu, ref) < 0.5 * best
     assert result.read_noise_adu == pytest.approx(sigma_adu, rel=0.05)
     # the empirical-std path (no noise model) too
-    mean, used = ccd._clipped_mean(stack, sigma=3.0, maxiters=5, noise=None)
+    mean, used = clipped_mean(stack, sigma=3.0, maxiters=5, noise=None)
     assert rms(mean, ref) < 0.6 * best and rms(mean, truth) < 1.2 * best
     assert np.median(used) == n and used.min() >= 3
 
@@ -426,9 +435,9 @@ def test_bias_combined_in_row_blocks(rng):
 
     frames = [rng.normal(500, 4, (100, 30)).astype(np.float32) for _ in range(6)]
     readers = [Reader(f) for f in frames]
-    blocked = ccd.combine_bias(readers, block_rows=16)
+    blocked = combine_bias(readers, block_rows=16)
     assert max(max(r.requests) for r in readers) <= 16
-    whole = ccd.combine_bias(frames, block_rows=1000)
+    whole = combine_bias(frames, block_rows=1000)
     np.testing.assert_allclose(blocked.bias_adu, whole.bias_adu, rtol=0, atol=1e-4)
 
 
@@ -439,7 +448,7 @@ def test_photon_transfer_gain_analytic(rng):
     light = 20000 * (0.3 + np.exp(-((x - 150) / 90.0) ** 2)) \
         * (1 + 0.01 * rng.standard_normal((200, 300)))
     pair = [(rng.poisson(light * s) + rng.normal(0, rn_e, light.shape)) / gain for s in (1.0, 0.97)]
-    g = ccd.measure_gain(*pair, read_noise_adu=rn_e / gain)
+    g = measure_gain(*pair, read_noise_adu=rn_e / gain)
     assert g.gain_e_per_adu == pytest.approx(gain, rel=0.02)
     assert g.info["n_tiles"] > 40
 
@@ -450,8 +459,8 @@ def test_normalise_flat_keeps_illumination_when_asked():
     lamp = 1000 + 5 * xx                              # analytic lamp spectrum
     illum = np.where((yy >= 5) & (yy < 55), 1.0 - 0.002 * (yy - 30) ** 2 / 4, 0.001)
     flat = lamp * illum
-    kept = ccd.normalise_flat(flat, keep_slit_illumination=True, min_flat_snr=0)
-    removed = ccd.normalise_flat(flat, min_flat_snr=0)
+    kept = normalise_flat(flat, keep_slit_illumination=True, min_flat_snr=0)
+    removed = normalise_flat(flat, min_flat_snr=0)
     lit = kept.mask == 0
     expected = illum / illum[lit].mean()             # normalised illumination profile
     np.testing.assert_allclose(kept.response[lit], expected[lit], rtol=2e-3)
@@ -462,13 +471,13 @@ def test_normalise_flat_keeps_illumination_when_asked():
 
 def test_options_and_coercers():
     with pytest.raises(ConfigError, match="typo_key"):
-        ccd._options({"typo_key": 1}, ccd.BIAS_DEFAULTS, "bias")
+        merge_options({"typo_key": 1}, BIAS_DEFAULTS, "bias")
     with pytest.raises(ValueError, match="`dispersion_axis`"):
-        ccd.Orientation.from_instrument(dispersion_axis=3, wavelength_increases_with_pixel=True)
+        Orientation.from_instrument(dispersion_axis=3, wavelength_increases_with_pixel=True)
     with pytest.raises(ValueError, match="`raw_adu` must be 2-D"):
-        ccd.correct_and_trim(np.zeros(5), data_section=parse_section("[1:2,1:1]"))
+        correct_and_trim(np.zeros(5), data_section=parse_section("[1:2,1:1]"))
     with pytest.raises(CalibrationError, match="no bias frame"):
-        ccd.combine_bias([])
+        combine_bias([])
 
 
 def test_adapters_other_layout(tmp_path, rng):
@@ -527,12 +536,12 @@ def test_adapters_other_layout(tmp_path, rng):
         arc_e[:, c] = 20000.0 * illum[:, c] * resp[:, c]
     arc = raw_frame(arc_e, "ARC", tmp_path / "arc.fits.gz")
     out = tmp_path / "out"
-    ccd.make_master_bias_file(frames=biases, master=str(out / "b.fits"), qa=str(out / "b.ecsv"),
+    make_master_bias_file(frames=biases, master=str(out / "b.fits"), qa=str(out / "b.ecsv"),
                               instrument=instrument)
-    ccd.make_master_flat_file(frames=flats, bias=str(out / "b.fits"), master=str(out / "f.fits"),
+    make_master_flat_file(frames=flats, bias=str(out / "b.fits"), master=str(out / "f.fits"),
                               qa=str(out / "f.ecsv"), instrument=instrument)
     # the configured gain (the measured one rests on only 5 tiles of this small frame)
-    ccd.calibrate_frame_file(raw=arc, bias=str(out / "b.fits"), flat=str(out / "f.fits"),
+    calibrate_frame_file(raw=arc, bias=str(out / "b.fits"), flat=str(out / "f.fits"),
                              calibrated=str(out / "arc.fits"), frame_type="arc",
                              instrument=instrument, calibration={"use_measured_gain": False})
     mb, mf, cal = (read_frame(out / n) for n in ("b.fits", "f.fits", "arc.fits"))
@@ -569,9 +578,9 @@ def test_module_defaults_match_the_schema():
                 else sub["default"]
         return out
 
-    for section, module_defaults in (("overscan", ccd.OVERSCAN_DEFAULTS),
-                                     ("bias", ccd.BIAS_DEFAULTS), ("flat", ccd.FLAT_DEFAULTS),
-                                     ("calibration", ccd.CALIBRATION_DEFAULTS)):
+    for section, module_defaults in (("overscan", OVERSCAN_DEFAULTS),
+                                     ("bias", BIAS_DEFAULTS), ("flat", FLAT_DEFAULTS),
+                                     ("calibration", CALIBRATION_DEFAULTS)):
         assert defaults(schema[section]) == module_defaults, section
 
 
@@ -605,9 +614,9 @@ def _tiny_night(tmp_path, rng, extra_header):
              for i in range(3)]
     sci = raw_frame(np.full((ny, nx), 300.0), "SCIENCE", tmp_path / "sci.fits")
     out = tmp_path / "out"
-    ccd.make_master_bias_file(frames=biases, master=str(out / "b.fits"), qa=str(out / "b.ecsv"),
+    make_master_bias_file(frames=biases, master=str(out / "b.fits"), qa=str(out / "b.ecsv"),
                               instrument=instrument)
-    ccd.make_master_flat_file(frames=flats, bias=str(out / "b.fits"), master=str(out / "f.fits"),
+    make_master_flat_file(frames=flats, bias=str(out / "b.fits"), master=str(out / "f.fits"),
                               qa=str(out / "f.ecsv"), instrument=instrument)
     return instrument, str(out / "b.fits"), str(out / "f.fits"), sci
 
@@ -626,7 +635,7 @@ def test_calibrated_frames_carry_the_standard_keywords(tmp_path, rng):
                 "slit_width_arcsec": "APERWID", "filter": "FILTNAME", "lamps": "ARCLAMP",
                 "binning": "CCDSUM"}
     instrument, bias, flat, sci = _tiny_night(tmp_path, rng, raw)
-    ccd.calibrate_frame_file(raw=sci, bias=bias, flat=flat, calibrated=str(tmp_path / "c.fits"),
+    calibrate_frame_file(raw=sci, bias=bias, flat=flat, calibrated=str(tmp_path / "c.fits"),
                              frame_type="science", instrument=instrument, keywords=keywords,
                              calibration={"use_measured_gain": False,
                                           "cosmic_rays": {"enabled": False}})
@@ -646,7 +655,7 @@ def test_flat_keeping_the_slit_illumination_follows_the_lamp_profile(night):
     # vignetting and the lamp's own gradient), binned like the detector.
     inst = night["inst"]
     out = night["out"]
-    ccd.make_master_flat_file(frames=[night["paths"][f"flat{i}"] for i in range(3)],
+    make_master_flat_file(frames=[night["paths"][f"flat{i}"] for i in range(3)],
                               bias=str(out / "bias.fits"), master=str(out / "flat_illum.fits"),
                               qa=str(out / "flat_illum_qa.ecsv"), instrument=ccd_instrument(),
                               overscan=CONFIG["overscan"],
@@ -686,7 +695,7 @@ def test_raw_geometry_keywords_not_copied(tmp_path, rng):
     kept = {"OBJECT": "Ridge Nebula", "EXPTIME": 300.0, "TELESCOP": "TRO 1.8m",
             "FILTER1": "GG395", "OBSERVER": "night crew"}   # FILTER1 has no FILTER2: kept
     instrument, bias, flat, sci = _tiny_night(tmp_path, rng, {**raw_wcs, **kept})
-    ccd.calibrate_frame_file(raw=sci, bias=bias, flat=flat, calibrated=str(tmp_path / "c.fits"),
+    calibrate_frame_file(raw=sci, bias=bias, flat=flat, calibrated=str(tmp_path / "c.fits"),
                              frame_type="science", instrument=instrument,
                              keywords={"binning": "CCDSUM"},
                              calibration={"use_measured_gain": False,

@@ -9,7 +9,7 @@ Truth used here:
   with a known line-tilt polynomial;
 * astropy.wcs evaluating the FITS grating algorithm (Greisen et al. 2006).
 
-The "calibrated" arcs below are what pipeline.ccd.calibrate would produce from the simulator's
+The "calibrated" arcs below are what pipeline.ccd would produce from the simulator's
 frames: the simulated flat-fielded signal (``illumination_e``) with Poisson and read
 noise in electrons, and variance = signal + read noise^2.
 """
@@ -23,8 +23,15 @@ from astropy.wcs import WCS
 from numpy.polynomial import chebyshev as cheb
 
 from pipeline.wavelength import grating as gr
-from pipeline.wavelength import solve as ws
-from pipeline.wavelength.arclines import extract_band, find_arc_lines, find_arc_lines_file
+from pipeline.wavelength.arclines import extract_band, find_arc_lines
+from pipeline.core.constants import SPEED_OF_LIGHT_KM_S
+from pipeline.wavelength.fit1d import WavelengthSolution1D, fit_grating_parameters
+from pipeline.wavelength.identify import (isolated_lines, match_lines, merge_unresolved,
+                                          search_grating_parameters)
+from pipeline.wavelength.products import load_wavelength_map
+from pipeline.wavelength.solve import solve_wavelength
+from pipeline.wavelength.steps import find_arc_lines_file, solve_wavelength_file
+from pipeline.wavelength.tilt import LineTraces, WavelengthSolution2D, fit_line_tilt
 from pipeline.core.errors import InputFileError, OrderOverlapWarning, WavelengthSolutionError
 from pipeline.core.frames import Frame, write_frame
 from pipeline.wavelength.linelists import LineList, read_line_list, species_for_lamps
@@ -68,7 +75,7 @@ def solve(data, var, mask, header, **options):
     species = species_for_lamps(header["LAMPS"], LAMPS)
     nominal = gr.model_from_config(GRATING, tilt_deg=header["GRTILT"], binning=header["BINSPEC"],
                                    nx_px=data.shape[1])
-    return ws.solve_wavelength(data, var, mask, lines, read_line_list(species=species), nominal,
+    return solve_wavelength(data, var, mask, lines, read_line_list(species=species), nominal,
                                reference_row=0.5 * sum(band.rows), **options)
 
 
@@ -184,7 +191,7 @@ def test_search_recovers_tilt_and_focal_length(rng):
     x = truth.pixel(listed)
     seen = (x > 0) & (x < 1023) & (rng.uniform(size=60) > 0.15)     # some lines missing
     detected = np.concatenate([x[seen], rng.uniform(0, 1023, 6)])    # and a few extra
-    best = ws.search_grating_parameters(detected, listed, nominal, 1024)[0]
+    best = search_grating_parameters(detected, listed, nominal, 1024)[0]
     assert best["tilt_deg"] == pytest.approx(10.37, abs=0.01)
     assert best["focal_length_mm"] == pytest.approx(255.25, rel=0.003)
     assert best["score"] >= seen.sum()
@@ -194,7 +201,7 @@ def test_fit_recovers_exact_parameters_from_noise_free_lines():
     truth = _model(tilt_deg=10.2, focal_length_mm=253.0, center_px=514.0)
     wave = np.linspace(4900, 7100, 25)
     x = truth.pixel(wave)
-    fitted, coeffs, errors, _ = ws.fit_grating_parameters(
+    fitted, coeffs, errors, _ = fit_grating_parameters(
         x, np.full(x.size, 0.01), wave, _model(tilt_deg=10.15, focal_length_mm=251.0),
         center_prior_px=1e4)
     assert fitted.tilt_deg == pytest.approx(10.2, abs=1e-6)
@@ -206,7 +213,7 @@ def test_fit_recovers_exact_parameters_from_noise_free_lines():
     distortion = np.zeros(4)
     distortion[3] = 0.4
     lam = wave + cheb.chebval((2 * x - 1023) / 1023, distortion)
-    fitted, coeffs, _, _ = ws.fit_grating_parameters(
+    fitted, coeffs, _, _ = fit_grating_parameters(
         x, np.full(x.size, 0.01), lam, _model(tilt_deg=10.15), correction_terms=(3,),
         domain_px=domain, center_prior_px=1e4)
     assert coeffs[3] == pytest.approx(0.4, abs=1e-5)
@@ -220,7 +227,7 @@ def test_camera_axis_prior_stays_on_the_nominal_position():
     wave = np.linspace(4900, 7100, 25)
     x = truth.pixel(wave)
     start = _model(tilt_deg=10.15, focal_length_mm=251.0, center_px=530.0)
-    fitted, _, _, _ = ws.fit_grating_parameters(x, np.full(x.size, 0.01), wave, start,
+    fitted, _, _, _ = fit_grating_parameters(x, np.full(x.size, 0.01), wave, start,
                                                 center_prior_px=1e-4, center_nominal_px=511.5)
     assert fitted.center_px == pytest.approx(511.5, abs=1e-3)
     assert fitted.tilt_deg == pytest.approx(10.2, abs=1e-5)
@@ -229,7 +236,7 @@ def test_camera_axis_prior_stays_on_the_nominal_position():
 def test_match_lines_is_one_to_one():
     det = np.array([10.0, 20.0, 20.6, 50.0])
     pred = np.array([10.4, 20.5, 80.0])
-    d, p = ws.match_lines(det, pred, tolerance_px=1.0)
+    d, p = match_lines(det, pred, tolerance_px=1.0)
     assert list(zip(d, p)) == [(0, 0), (2, 1)]        # 20.0 loses to its closer rival 20.6
 
 
@@ -237,11 +244,11 @@ def test_isolation_and_merging_of_listed_lines():
     w = np.array([5000.0, 5003.0, 5100.0, 5101.0, 5200.0, 5200.05])
     sp = np.array(["Ne I", "Ar I", "Ne I", "Ne I", "Ne I", "Ne I"])
     inten = np.array([100.0, 1.0, 100.0, 2.0, 1000.0, 300.0])
-    iso = ws.isolated_lines(w, sp, inten, min_separation_angstrom=5.0, faint_ratio=0.03)
+    iso = isolated_lines(w, sp, inten, min_separation_angstrom=5.0, faint_ratio=0.03)
     # other species always count; a same-species neighbour at 2 % does not
     assert iso.tolist() == [False, False, True, False, False, False]
     lines = LineList(sp, w, inten, np.array(["s"] * 6), np.array([""] * 6))
-    merged = ws.merge_unresolved(lines, max_separation_angstrom=0.2)
+    merged = merge_unresolved(lines, max_separation_angstrom=0.2)
     assert len(merged) == 5
     assert merged.wave_air_angstrom[-1] == pytest.approx((5200 * 1000 + 5200.05 * 300) / 1300)
 
@@ -249,9 +256,9 @@ def test_isolation_and_merging_of_listed_lines():
 def _synthetic_solution(q, shape=(200, 800)):
     ny, nx = shape
     model = _model(binning=2, center_px=(nx - 1) / 2)
-    s1 = ws.WavelengthSolution1D(model, model, np.zeros(4), (0.0, nx - 1.0), nx, 100.0, {},
+    s1 = WavelengthSolution1D(model, model, np.zeros(4), (0.0, nx - 1.0), nx, 100.0, {},
                                  0, 0, 0, 0, 0, {})
-    return ws.WavelengthSolution2D(s1, np.asarray(q, float), (nx - 1) / 2, nx / 2, 100.0, ny / 2,
+    return WavelengthSolution2D(s1, np.asarray(q, float), (nx - 1) / 2, nx / 2, 100.0, ny / 2,
                                    shape, None, None, None, 0, 0, {})
 
 
@@ -265,14 +272,14 @@ def test_line_tilt_fit_recovers_a_known_polynomial(rng):
     x = np.broadcast_to(x_ref - offsets, (y.size, x_ref.size)).copy()
     for _ in range(30):
         x = (x_ref - offsets)[None, :] - helper.shift(x, y[:, None])
-    traces = ws.LineTraces(np.linspace(5000, 6500, 15), x_ref, y, x, np.full(x.shape, 0.01),
+    traces = LineTraces(np.linspace(5000, 6500, 15), x_ref, y, x, np.full(x.shape, 0.01),
                            np.ones(x.shape, bool))
-    fit = ws.fit_line_tilt(traces, helper.solution_1d, (200, 800))
+    fit = fit_line_tilt(traces, helper.solution_1d, (200, 800))
     np.testing.assert_allclose(fit.q_coeffs, q_true, atol=1e-8)
     np.testing.assert_allclose(fit.info["line_offsets_px"], offsets, atol=1e-8)
     assert fit.rms_px < 1e-8
     with pytest.raises(WavelengthSolutionError, match="too few"):
-        ws.fit_line_tilt(ws.LineTraces(traces.wave_angstrom, x_ref, y, x, traces.x_err_px,
+        fit_line_tilt(LineTraces(traces.wave_angstrom, x_ref, y, x, traces.x_err_px,
                                        np.zeros(x.shape, bool)), helper.solution_1d, (200, 800))
 
 
@@ -303,14 +310,14 @@ def solved_arc(tmp_path_factory):
         ("plot_dispersion", "qa/arc_b_wavelength_dispersion.png"))}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        sol = ws.solve_wavelength_file(arc=str(arc), lines=str(lines), grating=GRATING,
+        sol = solve_wavelength_file(arc=str(arc), lines=str(lines), grating=GRATING,
                                        lamps=LAMPS, setup="G600_t11.83_test", **out)
     return {"tmp": tmp, "arc": arc, "lines": lines, "out": out, "sol": sol, "truth": truth,
             "warnings": caught}
 
 
 def test_solution_file_map_matches_truth(solved_arc):
-    m = ws.load_wavelength_map(solved_arc["out"]["solution"])
+    m = load_wavelength_map(solved_arc["out"]["solution"])
     true = solved_arc["truth"].wavelength_map()
     assert m.wave_angstrom.dtype == np.float64 and m.shape == true.shape
     err = (m.wave_angstrom - true) / np.abs(np.gradient(true, axis=1))
@@ -319,7 +326,7 @@ def test_solution_file_map_matches_truth(solved_arc):
     assert h["SETUP"] == "G600_t11.83_test" and h["BUNIT"] == "Angstrom"
     assert h["WSTILT0"] == 11.83 and h["WSTILT"] == pytest.approx(12.01, abs=0.03)  # truth +0.18
     assert h["WSRMSV"] == pytest.approx(
-        ws.SPEED_OF_LIGHT_KM_S * h["WSRMSA"] / h["CRVAL1"], rel=0.1)
+        SPEED_OF_LIGHT_KM_S * h["WSRMSA"] / h["CRVAL1"], rel=0.1)
     for key in ("PIPEVERS", "INPUT01", "INPUT02", "WCC3", "WQ11", "WS2DRMSP"):
         assert key in h
     with fits.open(solved_arc["out"]["solution"]) as hdul:
@@ -328,7 +335,7 @@ def test_solution_file_map_matches_truth(solved_arc):
 
 
 def test_wcs_and_correction_reproduce_the_reference_row(solved_arc):
-    m = ws.load_wavelength_map(solved_arc["out"]["solution"])
+    m = load_wavelength_map(solved_arc["out"]["solution"])
     h = m.header
     row = int(h["WSYREF"])
     x = np.arange(m.shape[1], dtype=float)
@@ -377,7 +384,7 @@ def test_failed_identification_writes_nothing(tmp_path):
     find_arc_lines_file(arc=str(arc), lines=str(lines))
     target = tmp_path / "arc_solution.fits"
     with pytest.raises(WavelengthSolutionError, match=r"arc.fits \(setup S\)"):
-        ws.solve_wavelength_file(arc=str(arc), lines=str(lines), solution=str(target),
+        solve_wavelength_file(arc=str(arc), lines=str(lines), solution=str(target),
                                  qa=str(tmp_path / "qa.ecsv"), grating=GRATING, lamps=LAMPS,
                                  setup="S")
     assert not target.exists()
@@ -385,18 +392,18 @@ def test_failed_identification_writes_nothing(tmp_path):
     del header["BINSPEC"]
     write_frame(Frame(data.astype(np.float32), var.astype(np.float32), mask, header), arc)
     with pytest.raises(InputFileError, match="BINSPEC"):
-        ws.solve_wavelength_file(arc=str(arc), lines=str(lines), solution=str(target),
+        solve_wavelength_file(arc=str(arc), lines=str(lines), solution=str(target),
                                  qa=str(tmp_path / "qa.ecsv"), grating=GRATING, lamps=LAMPS)
 
 
 def test_load_wavelength_map_rejects_bad_files(tmp_path):
     with pytest.raises(InputFileError, match="missing.fits"):
-        ws.load_wavelength_map(tmp_path / "missing.fits")
+        load_wavelength_map(tmp_path / "missing.fits")
     fits.PrimaryHDU(np.ones((4, 5))).writeto(tmp_path / "nounit.fits")
     with pytest.raises(InputFileError, match="BUNIT"):
-        ws.load_wavelength_map(tmp_path / "nounit.fits")
+        load_wavelength_map(tmp_path / "nounit.fits")
     hdu = fits.PrimaryHDU(np.tile(np.arange(5.0)[::-1], (4, 1)))
     hdu.header["BUNIT"] = "Angstrom"
     hdu.writeto(tmp_path / "flipped.fits")
     with pytest.raises(InputFileError, match="increase along axis 1"):
-        ws.load_wavelength_map(tmp_path / "flipped.fits")
+        load_wavelength_map(tmp_path / "flipped.fits")

@@ -16,25 +16,24 @@ Steps (each a pure function on arrays):
    pixel is saturated or masked, when a neighbour is closer than a few FWHM
    (blend), at the array edge, or when the fit fails.
 
-The adapter :func:`find_arc_lines_file` reads a calibrated arc frame and
-writes the line table (ECSV) for the wavelength solution.
+The rule's adapter (:func:`pipeline.wavelength.steps.find_arc_lines_file`) reads a
+calibrated arc frame and writes the line table (ECSV) for the wavelength solution.
 """
 
 import math
-import warnings
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 from scipy import ndimage, signal, special
 
 from pipeline.core import maskbits
-from pipeline.core.errors import ArcQualityWarning, InputFileError
+from pipeline.core.checks import as_1d_float, as_2d
+from pipeline.core.errors import InputFileError
 
 __all__ = [
     "LineFlag", "ArcSpectrum", "ArcLines", "extract_band", "sum_rows", "continuum_level",
     "fit_gaussian_windows", "measure_lines", "find_arc_lines", "lines_table",
-    "read_lines_table", "find_arc_lines_file",
+    "read_lines_table",
 ]
 
 _SQRT_2PI = math.sqrt(2 * math.pi)
@@ -56,26 +55,6 @@ class LineFlag:
     def describe(cls, value):
         """Names of the flags set in ``value``."""
         return [name for bit, name in cls.NAMES.items() if int(value) & bit]
-
-
-# --------------------------------------------------------------------------------------
-# coercers
-# --------------------------------------------------------------------------------------
-
-def _as_2d(array, name):
-    arr = np.asarray(array)
-    if arr.ndim != 2:
-        raise ValueError(f"`{name}` must be 2-D (ny, nx), got shape {arr.shape}")
-    return arr
-
-
-def _as_1d(array, name, *, size=None):
-    arr = np.asarray(array, dtype=float)
-    if arr.ndim != 1:
-        raise ValueError(f"`{name}` must be 1-D, got shape {arr.shape}")
-    if size is not None and arr.size != size:
-        raise ValueError(f"`{name}` must have {size} elements, got {arr.size}")
-    return arr
 
 
 # --------------------------------------------------------------------------------------
@@ -120,9 +99,9 @@ def extract_band(data, variance, mask, *, center_row=None, half_width_rows=5):
     -------
     ArcSpectrum
     """
-    data = _as_2d(data, "data")
-    variance = _as_2d(variance, "variance")
-    mask = _as_2d(mask, "mask")
+    data = as_2d(data, "data")
+    variance = as_2d(variance, "variance")
+    mask = as_2d(mask, "mask")
     if variance.shape != data.shape or mask.shape != data.shape:
         raise ValueError(f"`variance` {variance.shape} and `mask` {mask.shape} must have the "
                          f"shape of `data` {data.shape}")
@@ -197,7 +176,7 @@ def continuum_level(flux, *, window_px=61, percentile=10.0, good=None, variance=
     -------
     ndarray, shape (nx,), electron
     """
-    flux = _as_1d(flux, "flux")
+    flux = as_1d_float(flux, "flux")
     window = int(window_px)
     if window < 3:
         raise ValueError(f"`window_px` must be >= 3, got {window_px!r}")
@@ -411,8 +390,8 @@ def measure_lines(flux, variance, x_guess_px, *, sigma_guess_px, mask=None, back
         ``x_px, x_err_px, flux_e, flux_err_e, sigma_px, sigma_err_px, peak_e,
         background_e, chi2_reduced, ok, edge, saturated, masked``.
     """
-    flux = _as_1d(flux, "flux")
-    variance = _as_1d(variance, "variance", size=flux.size)
+    flux = as_1d_float(flux, "flux")
+    variance = as_1d_float(variance, "variance", size=flux.size)
     x_guess = np.atleast_1d(np.asarray(x_guess_px, dtype=float))
     n = x_guess.size
     sigma0 = np.broadcast_to(np.asarray(sigma_guess_px, dtype=float), (n,)).copy()
@@ -566,8 +545,8 @@ def find_arc_lines(flux, variance, *, mask=None, detection_snr=10.0, min_separat
     >>> round(float(lines.x_px[0]), 1)
     80.3
     """
-    flux = _as_1d(flux, "flux")
-    variance = _as_1d(variance, "variance", size=flux.size)
+    flux = as_1d_float(flux, "flux")
+    variance = as_1d_float(variance, "variance", size=flux.size)
     if mask is None:
         mask = np.zeros(flux.size, dtype=maskbits.MASK_DTYPE)
     mask = np.asarray(mask)
@@ -648,13 +627,8 @@ def find_arc_lines(flux, variance, *, mask=None, detection_snr=10.0, min_separat
 
 
 # --------------------------------------------------------------------------------------
-# table and FITS adapter
+# line table
 # --------------------------------------------------------------------------------------
-
-#: Header keywords of the arc copied into the line table's metadata.
-_ARC_KEYWORDS = ("OBJECT", "DATE-OBS", "EXPTIME", "GRATING", "GRTILT", "SLITWID", "FILTER",
-                 "LAMPS", "BINSPEC", "BINSPAT", "SETUP")
-
 
 def lines_table(lines, *, meta=None):
     """The measured lines as an astropy Table (one row per line, units attached).
@@ -711,56 +685,7 @@ def read_lines_table(path):
     missing = [c for c in cols if c not in table.colnames]
     if missing:
         raise InputFileError(path, f"line table lacks column(s) {', '.join(missing)}; expected a "
-                             "table written by pipeline.wavelength.arclines.find_arc_lines_file")
+                             "table written by pipeline.wavelength.steps.find_arc_lines_file")
     values = [np.asarray(table[c], dtype=float) for c in cols[:-1]]
     info = {k: v for k, v in table.meta.items()}
     return ArcLines(*values, np.asarray(table["flags"], dtype=int), info)
-
-
-def find_arc_lines_file(*, arc, lines, center_band_half_width_rows=5, detection_snr=10.0,
-                        min_separation_px=2.0, continuum_window_px=61, continuum_percentile=10.0,
-                        fwhm_guess_px=None, fit_half_width_fwhm=1.5, blend_separation_fwhm=2.0,
-                        broad_fwhm_ratio=1.15, deblend_passes=4, saturation_e=None):
-    """Find and measure the lines of a calibrated arc frame; write them as ECSV.
-
-    Parameters
-    ----------
-    arc : str
-        Calibrated arc frame (:func:`pipeline.core.frames.read_frame` layout, canonical
-        orientation).
-    lines : str
-        Output ECSV path.
-    center_band_half_width_rows : int
-        Rows summed on each side of the middle row of the slit.
-    Other parameters
-        As :func:`find_arc_lines`.
-    """
-    from pipeline.core.frames import read_frame
-
-    frame = read_frame(arc)
-    ny, nx = frame.shape
-    if nx < 50:
-        raise InputFileError(arc, f"data has only {nx} pixels along the dispersion (axis 1); "
-                             "expected a calibrated arc in canonical orientation")
-    band = extract_band(frame.data, frame.variance, frame.mask,
-                        half_width_rows=center_band_half_width_rows)
-    found = find_arc_lines(band.flux, band.variance, mask=band.mask, detection_snr=detection_snr,
-                           min_separation_px=min_separation_px,
-                           continuum_window_px=continuum_window_px,
-                           continuum_percentile=continuum_percentile, fwhm_guess_px=fwhm_guess_px,
-                           fit_half_width_fwhm=fit_half_width_fwhm,
-                           blend_separation_fwhm=blend_separation_fwhm,
-                           broad_fwhm_ratio=broad_fwhm_ratio, deblend_passes=deblend_passes,
-                           saturation_e=saturation_e)
-    if len(found) == 0:
-        warnings.warn(f"{arc}: no arc line above {detection_snr} sigma in rows "
-                      f"{band.rows[0]}-{band.rows[1]}", ArcQualityWarning, stacklevel=2)
-    meta = {"arc_frame": str(arc), "band_first_row": band.rows[0], "band_last_row": band.rows[1],
-            "ny": ny, "nx": nx}
-    for key in _ARC_KEYWORDS:
-        if key in frame.header:
-            meta[key] = frame.header[key]
-    table = lines_table(found, meta=meta)
-    Path(lines).parent.mkdir(parents=True, exist_ok=True)
-    table.write(lines, format="ascii.ecsv", overwrite=True)
-    return table

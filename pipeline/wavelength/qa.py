@@ -1,6 +1,6 @@
 """Figures the observer inspects in the morning for each wavelength solution.
 
-Each function takes result objects of :mod:`pipeline.wavelength.solve` and returns a
+Each function takes result objects of :mod:`pipeline.wavelength.tilt` and returns a
 matplotlib ``Figure`` (object API, no pyplot state, Agg canvas), so it can be
 tested or saved anywhere; :func:`write_figures` saves the four PNGs of one arc:
 

@@ -31,11 +31,11 @@ __all__ = ["STEPS", "run_rule"]
 #: rule name -> (module, adapter function)
 STEPS = {
     "night_log": ("pipeline.night.steps", "write_night_log_file"),
-    "master_bias": ("pipeline.ccd.calibrate", "make_master_bias_file"),
-    "master_flat": ("pipeline.ccd.calibrate", "make_master_flat_file"),
-    "calibrate_frame": ("pipeline.ccd.calibrate", "calibrate_frame_file"),
-    "find_arc_lines": ("pipeline.wavelength.arclines", "find_arc_lines_file"),
-    "solve_wavelength": ("pipeline.wavelength.solve", "solve_wavelength_file"),
+    "master_bias": ("pipeline.ccd.steps", "make_master_bias_file"),
+    "master_flat": ("pipeline.ccd.steps", "make_master_flat_file"),
+    "calibrate_frame": ("pipeline.ccd.steps", "calibrate_frame_file"),
+    "find_arc_lines": ("pipeline.wavelength.steps", "find_arc_lines_file"),
+    "solve_wavelength": ("pipeline.wavelength.steps", "solve_wavelength_file"),
     "extract_spectra": ("pipeline.extraction.steps", "extract_frame_file"),
     "fit_sensitivity": ("pipeline.fluxcal.steps", "fit_sensitivity_file"),
     "flux_calibrate": ("pipeline.fluxcal.steps", "flux_calibrate_file"),

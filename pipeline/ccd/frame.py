@@ -1,0 +1,246 @@
+"""Frame calibration: overscan, trim, orient, bias, gain, flat, variance, mask and cosmic rays."""
+
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from pipeline.core.checks import as_2d, positive
+from pipeline.core.errors import CalibrationQualityWarning
+from pipeline.core.maskbits import MASK_DTYPE, MaskBit
+from pipeline.ccd.cards import calibrated_header, standard_keyword_cards
+from pipeline.ccd.cosmics import find_cosmic_rays
+from pipeline.ccd.gain import choose_gain_and_read_noise
+from pipeline.ccd.overscan import correct_and_trim
+
+__all__ = ["CalibratedFrame", "calibrate_ccd", "FrameProduct", "cosmic_ray_search_wanted",
+           "calibrate_raw_frame"]
+
+# mask bits as uint8 scalars, so in-place ORs keep the mask dtype
+_BAD = MASK_DTYPE(MaskBit.BAD_PIXEL)
+_SAT = MASK_DTYPE(MaskBit.SATURATED)
+_CR = MASK_DTYPE(MaskBit.COSMIC_RAY)
+_NONFINITE = MASK_DTYPE(MaskBit.NONFINITE)
+
+
+@dataclass(frozen=True)
+class CalibratedFrame:
+    """A CCD-calibrated frame in canonical orientation.
+
+    Attributes
+    ----------
+    data_e : ndarray, shape (ny, nx), float32, electron
+    variance_e2 : ndarray, shape (ny, nx), float32, electron^2
+    mask : ndarray, shape (ny, nx), uint8
+    info : dict
+        ``gain_e_per_adu``, ``read_noise_e``, ``n_saturated``, ``n_cosmic``,
+        ``overscan`` (fit info).
+    """
+
+    data_e: np.ndarray
+    variance_e2: np.ndarray
+    mask: np.ndarray
+    info: dict = field(default_factory=dict)
+
+
+def calibrate_ccd(raw_adu, *, data_section, overscan_section, orientation, gain_e_per_adu,
+                  read_noise_e, saturation_adu=np.inf, bias_adu=None, bias_variance_adu2=None,
+                  bias_mask=None, flat=None, flat_variance=None, flat_mask=None,
+                  include_flat_error=True, cosmic_rays=False, cosmic_ray_options=None,
+                  overscan_options=None):
+    """Overscan, trim, orient, bias, gain, flat, variance, mask and cosmic rays.
+
+    Parameters
+    ----------
+    raw_adu : ndarray, shape (ny_raw, nx_raw), ADU
+    data_section, overscan_section : pipeline.core.headers.Section (overscan may be None)
+    orientation : Orientation
+    gain_e_per_adu : float, electron / ADU
+    read_noise_e : float, electron
+    saturation_adu : float, ADU
+        Raw values at or above it are SATURATED.
+    bias_adu, bias_variance_adu2 : ndarray, shape (ny, nx), canonical, optional
+        Master bias (ADU) and its variance.
+    bias_mask, flat_mask : ndarray of uint8, optional
+        ORed into the frame's mask.
+    flat, flat_variance : ndarray, shape (ny, nx), optional
+        Normalised response and its variance.
+    include_flat_error : bool
+        Add the flat's variance term.
+    cosmic_rays : bool
+        Run :func:`find_cosmic_rays`.
+
+    Returns
+    -------
+    CalibratedFrame
+
+    Notes
+    -----
+    ``e = g (raw - overscan - bias)``; ``data = e / flat``;
+    ``var = (RN^2 + max(e, 0) + g^2 var_bias) / flat^2 + data^2 var_flat / flat^2``.
+    """
+    raw = as_2d(raw_adu, "raw_adu", dtype=np.float32)
+    gain = positive(gain_e_per_adu, "gain_e_per_adu")
+    rn = positive(read_noise_e, "read_noise_e", allow_zero=True)
+    nonfinite_raw = ~np.isfinite(raw)
+    saturated_raw = np.zeros(raw.shape, bool) if saturation_adu is None else (raw >= saturation_adu)
+    raw_clean = np.where(nonfinite_raw, 0, raw) if nonfinite_raw.any() else raw
+    data_adu, ov_fit = correct_and_trim(raw_clean, data_section=data_section,
+                                        overscan_section=overscan_section,
+                                        orientation=orientation,
+                                        overscan_options=overscan_options)
+    rows, cols = data_section.slices
+    saturated = np.ascontiguousarray(orientation.apply(saturated_raw[rows, cols]))
+    nonfinite = np.ascontiguousarray(orientation.apply(nonfinite_raw[rows, cols]))
+    shape = data_adu.shape
+    mask = np.zeros(shape, dtype=MASK_DTYPE)
+    mask[saturated] |= _SAT
+    mask[nonfinite] |= _NONFINITE
+    for name, arr in (("bias_adu", bias_adu), ("bias_variance_adu2", bias_variance_adu2),
+                      ("bias_mask", bias_mask), ("flat", flat), ("flat_variance", flat_variance),
+                      ("flat_mask", flat_mask)):
+        if arr is not None and np.shape(arr) != shape:
+            raise ValueError(f"`{name}` has shape {np.shape(arr)}, expected {shape} (the "
+                             "trimmed, oriented frame)")
+    if bias_adu is not None:
+        data_adu = data_adu - np.asarray(bias_adu, dtype=np.float32)
+    electrons = data_adu * np.float32(gain)
+    var = np.float32(rn ** 2) + np.maximum(electrons, 0)
+    if bias_variance_adu2 is not None:
+        bias_var = np.nan_to_num(np.asarray(bias_variance_adu2, np.float32))
+        var = var + bias_var * np.float32(gain ** 2)
+    if bias_mask is not None:
+        mask |= np.asarray(bias_mask, dtype=MASK_DTYPE)
+    if flat is not None:
+        fl = np.asarray(flat, dtype=np.float32)
+        bad_flat = ~np.isfinite(fl) | (fl <= 0)
+        fl = np.where(bad_flat, 1.0, fl).astype(np.float32)
+        data = electrons / fl
+        var = var / fl ** 2
+        if include_flat_error and flat_variance is not None:
+            var = var + data ** 2 * np.nan_to_num(np.asarray(flat_variance, np.float32)) / fl ** 2
+        mask[bad_flat] |= _BAD
+        if flat_mask is not None:
+            mask |= np.asarray(flat_mask, dtype=MASK_DTYPE)
+    else:
+        data = electrons
+    bad_values = ~np.isfinite(data) | ~np.isfinite(var)
+    if bad_values.any():
+        mask[bad_values] |= _NONFINITE
+        data = np.where(bad_values, 0, data)
+        var = np.where(bad_values, np.float32(rn ** 2 if rn > 0 else 1.0), var)
+    n_cosmic = 0
+    if cosmic_rays:
+        crmask = find_cosmic_rays(data, read_noise_e=max(rn, 1e-3),
+                                  mask=(mask & (_BAD | _SAT | _NONFINITE)) != 0,
+                                  **(cosmic_ray_options or {}))
+        mask[crmask] |= _CR
+        n_cosmic = int(crmask.sum())
+    info = {"gain_e_per_adu": gain, "read_noise_e": rn, "n_saturated": int(saturated.sum()),
+            "n_cosmic": n_cosmic, "overscan": None if ov_fit is None else ov_fit.info}
+    return CalibratedFrame(data.astype(np.float32), var.astype(np.float32), mask, info)
+
+
+
+@dataclass(frozen=True)
+class FrameProduct:
+    """Everything a calibrated-frame file holds.
+
+    Attributes
+    ----------
+    frame : CalibratedFrame
+    header : astropy.io.fits.Header
+        Raw keywords (minus storage and raw-geometry ones), the standard keywords,
+        orientation and the calibration cards (without provenance).
+    noise : pipeline.ccd.gain.NoiseChoice
+    cosmic_rays_searched : bool
+    """
+
+    frame: CalibratedFrame
+    header: object
+    noise: object
+    cosmic_rays_searched: bool
+
+
+#: frame types whose cosmic rays are flagged (arcs never are: their lines are sharp)
+COSMIC_RAY_FRAME_TYPES = ("standard", "science")
+
+
+def cosmic_ray_search_wanted(frame_type, cosmic_rays):
+    """Whether a frame of ``frame_type`` is searched for cosmic rays.
+
+    >>> cosmic_ray_search_wanted("arc", {"enabled": True}), cosmic_ray_search_wanted("science", {})
+    (False, True)
+    """
+    return bool((cosmic_rays or {}).get("enabled", True)) and frame_type in COSMIC_RAY_FRAME_TYPES
+
+
+def calibrate_raw_frame(raw_adu, raw_header, layout, bias, flat, *, frame_type, instrument,
+                        gain_e_per_adu, read_noise_e, keywords=None, use_measured_gain=True,
+                        use_measured_read_noise=True, include_flat_error=True,
+                        cosmic_rays=None, overscan_options=None,
+                        default_read_noise_tolerance=0.2, name="frame"):
+    """Calibrate one raw frame with its masters and build its header (rule ``calibrate_frame``).
+
+    Parameters
+    ----------
+    raw_adu : ndarray, shape (ny_raw, nx_raw), ADU
+    raw_header : astropy.io.fits.Header
+        Primary + pixel-extension header of the raw frame.
+    layout : pipeline.ccd.geometry.FrameLayout
+    bias, flat : pipeline.core.frames.Frame
+        Master bias (ADU) and master flat (canonical).
+    frame_type : str
+        'arc', 'standard' or 'science'.
+    instrument : dict
+        CCD part of the instrument config (saturation, keywords kept in the header).
+    gain_e_per_adu, read_noise_e : float
+        Configured values (from the raw header or the config).
+    keywords : dict, optional
+        ``instrument.keywords`` (standard keyword cards).
+    use_measured_gain, use_measured_read_noise, include_flat_error, cosmic_rays
+        The ``calibration`` config section.
+    default_read_noise_tolerance : float
+        Used when the master bias has no ``RNTOL``.
+    name : str
+        Names the product in warnings.
+
+    Returns
+    -------
+    FrameProduct
+    """
+    noise = choose_gain_and_read_noise(
+        configured_gain_e_per_adu=gain_e_per_adu, configured_read_noise_e=read_noise_e,
+        flat_gain_e_per_adu=float(flat.header.get("GAINMEAS", -1)),
+        flat_gain_ok=bool(flat.header.get("GAINOK", False)),
+        bias_read_noise_adu=float(bias.header.get("RNMEAS", -1)),
+        read_noise_tolerance=float(bias.header.get("RNTOL", default_read_noise_tolerance)),
+        use_measured_gain=use_measured_gain, use_measured_read_noise=use_measured_read_noise)
+    if noise.message:
+        warnings.warn(f"{name}: {noise.message}", CalibrationQualityWarning)
+    cr = dict(cosmic_rays or {})
+    do_cr = cosmic_ray_search_wanted(frame_type, cr)
+    result = calibrate_ccd(
+        raw_adu, data_section=layout.data, overscan_section=layout.overscan,
+        orientation=layout.orientation, gain_e_per_adu=noise.gain_e_per_adu,
+        read_noise_e=noise.read_noise_e, saturation_adu=instrument.get("saturation_adu"),
+        bias_adu=bias.data, bias_variance_adu2=bias.variance, bias_mask=bias.mask,
+        flat=flat.data, flat_variance=flat.variance, flat_mask=flat.mask,
+        include_flat_error=include_flat_error, cosmic_rays=do_cr,
+        cosmic_ray_options={k: v for k, v in cr.items() if k != "enabled"},
+        overscan_options=overscan_options)
+    header = calibrated_header(raw_header, layout, frame_type, instrument,
+                               keep=[v for v in (keywords or {}).values() if isinstance(v, str)])
+    for card in standard_keyword_cards(raw_header, keywords):
+        header[card[0]] = card[1:]
+    header["GAIN"] = (noise.gain_e_per_adu, "e-/ADU gain used to convert to electrons")
+    header["GAINSRC"] = (noise.gain_source, "where GAIN came from")
+    header["RDNOISE"] = (noise.read_noise_e, "e- read noise used in the variance")
+    header["RDNSSRC"] = (noise.read_noise_source, "where RDNOISE came from")
+    header["NSATUR"] = (result.info["n_saturated"], "saturated pixels")
+    header["CRFLAGGD"] = (do_cr, "cosmic rays searched (van Dokkum 2001)")
+    header["NCOSMIC"] = (result.info["n_cosmic"], "pixels flagged as cosmic rays")
+    if result.info["overscan"]:
+        header["OVSCLEV"] = (result.info["overscan"]["mean_adu"], "ADU mean overscan level")
+        header["OVSCMETH"] = (result.info["overscan"]["method"], "overscan fit method")
+    return FrameProduct(result, header, noise, do_cr)
