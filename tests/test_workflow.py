@@ -133,8 +133,8 @@ def test_lint_finds_nothing_but_the_missing_conda_environments(reduced_night):
      {"master_bias", "night_log"}),
     # a cosmic-ray option: standards and science only (arcs are never searched), so no arc
     # line search or wavelength solution reruns
-    ("calibration", "cosmic_rays: {enabled: true, sigclip: 5.0, sigfrac: 0.3, objlim: 5.0, "
-     "niter: 2}", {"calibrate_frame", "extract_spectra"},
+    ("calibration", "cosmic_rays: {enabled: true, detection_limit_sigma: 5.0, "
+     "neighbour_fraction: 0.3, contrast_limit: 5.0, passes: 2}", {"calibrate_frame", "extract_spectra"},
      {"master_bias", "master_flat", "find_arc_lines", "solve_wavelength"}),
     # a grating key no step reads (the blaze is for longslit-grating): nothing is recalibrated
     ("instrument", "grating: {groove_density_per_mm: 600, order: 1, "

@@ -10,11 +10,13 @@ __all__ = ["find_cosmic_rays"]
 _CR_PAD = 6
 
 
-def find_cosmic_rays(data_e, *, read_noise_e, mask=None, sigclip=4.5, sigfrac=0.3,
-                     objlim=5.0, niter=2):
+def find_cosmic_rays(data_e, *, read_noise_e, mask=None, detection_limit_sigma=4.5,
+                     neighbour_fraction=0.3, contrast_limit=5.0, passes=2):
     """Flag cosmic-ray hits by the Laplacian method (van Dokkum 2001, PASP 113, 1420).
 
-    Uses astroscrappy's implementation of L.A.Cosmic.
+    Uses astroscrappy's implementation of the method; our option names map to its
+    arguments here only (``detection_limit_sigma`` -> ``sigclip``, ``neighbour_fraction``
+    -> ``sigfrac``, ``contrast_limit`` -> ``objlim``, ``passes`` -> ``niter``).
 
     Parameters
     ----------
@@ -23,12 +25,15 @@ def find_cosmic_rays(data_e, *, read_noise_e, mask=None, sigclip=4.5, sigfrac=0.
     read_noise_e : float, electron
     mask : ndarray of bool, shape (ny, nx), optional
         Pixels to ignore (bad, saturated).
-    sigclip, sigfrac, objlim : float
-        Detection limit (in sigma), neighbour limit (fraction of sigclip) and
-        the contrast limit between the Laplacian and the fine structure
-        (van Dokkum 2001, section 3).
-    niter : int
-        Detection iterations.
+    detection_limit_sigma : float
+        Detection limit of the Laplacian, in sigma of the noise.
+    neighbour_fraction : float
+        Limit for pixels beside a detection, as a fraction of ``detection_limit_sigma``.
+    contrast_limit : float
+        Minimum contrast between the Laplacian and the fine-structure image (van Dokkum
+        2001, section 3): protects sharp but resolved features (stars, lines).
+    passes : int
+        Detection passes; each finds hits beside those already found.
 
     Returns
     -------
@@ -47,8 +52,9 @@ def find_cosmic_rays(data_e, *, read_noise_e, mask=None, sigclip=4.5, sigfrac=0.
     if mask is not None:
         inmask = np.ascontiguousarray(np.pad(np.asarray(mask, bool), pad, mode="reflect"))
     flags, _ = astroscrappy.detect_cosmics(
-        padded, inmask=inmask, gain=1.0, readnoise=rn, satlevel=np.inf, sigclip=sigclip,
-        sigfrac=sigfrac, objlim=objlim, niter=int(niter), sepmed=True, cleantype="meanmask",
+        padded, inmask=inmask, gain=1.0, readnoise=rn, satlevel=np.inf,
+        sigclip=float(detection_limit_sigma), sigfrac=float(neighbour_fraction),
+        objlim=float(contrast_limit), niter=int(passes), sepmed=True, cleantype="meanmask",
         fsmode="median", verbose=False)
     flags = np.asarray(flags, dtype=bool)
     return flags[pad:flags.shape[0] - pad, pad:flags.shape[1] - pad] if pad else flags

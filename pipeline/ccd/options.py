@@ -18,8 +18,9 @@ FLAT_DEFAULTS = {"clip_sigma": 3.0, "clip_iterations": 5, "block_rows": 128,
                  "gain_tile_px": 32, "gain_tolerance": 0.2, "bad_pixel_sections": []}
 CALIBRATION_DEFAULTS = {"use_measured_gain": True, "use_measured_read_noise": True,
                         "include_flat_error": True,
-                        "cosmic_rays": {"enabled": True, "sigclip": 4.5, "sigfrac": 0.3,
-                                        "objlim": 5.0, "niter": 2}}
+                        "cosmic_rays": {"enabled": True, "detection_limit_sigma": 4.5,
+                                        "neighbour_fraction": 0.3, "contrast_limit": 5.0,
+                                        "passes": 2}}
 
 
 def overscan_kwargs(overscan):
