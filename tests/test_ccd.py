@@ -20,9 +20,11 @@ import yaml
 from astropy.io import fits
 from scipy.ndimage import binary_dilation, label, maximum_position
 
-from pipeline.ccd.bias import combine_bias
+from pipeline.ccd.bias import assess_read_noise, combine_bias
 from pipeline.ccd.flat_response import normalise_flat
-from pipeline.ccd.gain import measure_gain
+from pipeline.ccd.frame import cosmic_ray_search_wanted
+from pipeline.ccd.gain import (assess_gain, choose_gain_and_read_noise, flat_noise_read_noise_adu,
+                               measure_gain)
 from pipeline.ccd.geometry import Orientation
 from pipeline.ccd.options import (BIAS_DEFAULTS, CALIBRATION_DEFAULTS, FLAT_DEFAULTS,
                                   OVERSCAN_DEFAULTS, overscan_kwargs)
@@ -30,7 +32,8 @@ from pipeline.ccd.overscan import correct_and_trim, fit_overscan
 from pipeline.ccd.stacking import clipped_mean
 from pipeline.ccd.steps import calibrate_frame_file, make_master_bias_file, make_master_flat_file
 from pipeline.core.checks import merge_options
-from pipeline.core.errors import CalibrationError, CalibrationQualityWarning, ConfigError
+from pipeline.core.errors import (CalibrationError, CalibrationQualityWarning, ConfigError,
+                                  InputFileError)
 from pipeline.core.frames import read_frame
 from pipeline.core import headers as hdr
 from pipeline.core.headers import parse_section
@@ -122,7 +125,7 @@ def test_read_noise_recovered(night):
     assert rn_e == pytest.approx(TRUE_RN, rel=0.03)
     assert qa["n_frames"] == 5 and len(qa["pair_read_noise_adu"]) == 2
     cal = fits.getheader(night["out"] / "sci_cal.fits")
-    assert cal["RDNSSRC"] == "measured" and cal["RDNOISE"] == pytest.approx(TRUE_RN, rel=0.03)
+    assert cal["RNSRC"] == "measured" and cal["RNUSED"] == pytest.approx(TRUE_RN, rel=0.03)
 
 
 def test_gain_recovered(night):
@@ -131,7 +134,10 @@ def test_gain_recovered(night):
     assert night["flat"].header["GAINOK"] is True
     cal = fits.getheader(night["out"] / "sci_cal.fits")
     assert cal["GAINSRC"] == "measured"
-    assert cal["GAIN"] == pytest.approx(TRUE_GAIN, rel=0.03)
+    assert cal["GAINUSED"] == pytest.approx(TRUE_GAIN, rel=0.03)
+    # the raw cards (the simulator's nominal GAIN/RDNOISE, in ADU terms) are not carried
+    # into a frame in electrons: only our own cards say what was used
+    assert "GAIN" not in cal and "RDNOISE" not in cal
 
 
 def test_overscan_residual_level(night):
@@ -329,12 +335,81 @@ def test_master_shape_mismatch_names_files(night, tmp_path):
                                  flat=str(night["out"] / "flat.fits"),
                                  calibrated=str(tmp_path / "x.fits"), frame_type="arc",
                                  instrument=ccd_instrument())
-    with pytest.raises(ConfigError, match="sigclp"):
+    with pytest.raises(ConfigError, match="detection_limit_sigm"):
         calibrate_frame_file(raw=night["paths"]["arc"], bias=str(night["out"] / "bias.fits"),
                                  flat=str(night["out"] / "flat.fits"),
                                  calibrated=str(tmp_path / "x.fits"), frame_type="arc",
                                  instrument=ccd_instrument(),
-                                 calibration={"cosmic_rays": {"sigclp": 4}})
+                                 calibration={"cosmic_rays": {"detection_limit_sigm": 4}})
+
+
+
+def _spoiled_copy(src, dst, how, saturation):
+    """A copy of a raw frame whose pixels are not data (the header stays as it was)."""
+    with fits.open(src) as hdul:
+        hdul = fits.HDUList([h.copy() for h in hdul])
+    data = hdul[0].data.astype(np.float32)
+    if how == "zero":
+        data[:] = 0
+    elif how == "constant":
+        data[:] = 1234.0
+    elif how == "saturated":
+        data[:] = saturation + 100.0
+    elif how == "nan":
+        data[:, : int(data.shape[1] * 0.8)] = np.nan
+    hdul[0].data = data
+    for key in ("BZERO", "BSCALE"):
+        hdul[0].header.remove(key, ignore_missing=True)
+    hdul.writeto(dst)
+    return str(dst)
+
+
+@pytest.mark.parametrize("how, words", [("zero", "every pixel .* is 0"),
+                                        ("constant", "equals 1234"),
+                                        ("saturated", "saturated"),
+                                        ("nan", "NaN or infinite")])
+def test_frame_without_data_is_a_clear_error(night, tmp_path, how, words):
+    """Frames that are not data stop calibrate_frame with a message naming the file, what is
+    wrong and what to do (not a traceback from deep in a fit); the raw file is untouched."""
+    saturation = ccd_instrument()["saturation_adu"]
+    bad = _spoiled_copy(night["paths"]["sci"], tmp_path / "spoiled.fits", how, saturation)
+    before = sha256(bad)
+    with pytest.raises(InputFileError, match=f"spoiled.fits.*{words}.*copy it again"):
+        calibrate_frame_file(raw=bad, bias=str(night["out"] / "bias.fits"),
+                             flat=str(night["out"] / "flat.fits"),
+                             calibrated=str(tmp_path / "c.fits"), frame_type="science",
+                             instrument=ccd_instrument(), overscan=CONFIG["overscan"],
+                             calibration=CONFIG["calibration"])
+    assert sha256(bad) == before and not (tmp_path / "c.fits").exists()
+
+
+def test_masters_leave_out_frames_without_data(night, tmp_path):
+    """One bias and one flat without data are left out with a warning naming them; the
+    masters come from the others (equal, within noise, to the masters of the good frames)."""
+    saturation = ccd_instrument()["saturation_adu"]
+    biases = [night["paths"][f"bias{i}"] for i in range(4)]
+    biases.append(_spoiled_copy(night["paths"]["bias4"], tmp_path / "zero_bias.fits", "zero",
+                                saturation))
+    with pytest.warns(CalibrationQualityWarning, match="zero_bias.fits left out"):
+        make_master_bias_file(frames=biases, master=str(tmp_path / "b.fits"),
+                              qa=str(tmp_path / "b.ecsv"), instrument=ccd_instrument(),
+                              overscan=CONFIG["overscan"], bias=CONFIG["bias"])
+    h = fits.getheader(tmp_path / "b.fits")
+    assert (h["NFRAMES"], h["NLEFTOUT"]) == (4, 1)
+    flats = [night["paths"][f"flat{i}"] for i in range(3)]
+    flats.append(_spoiled_copy(night["paths"]["flat0"], tmp_path / "sat_flat.fits", "saturated",
+                               saturation))
+    with pytest.warns(CalibrationQualityWarning, match="sat_flat.fits left out.*saturated"):
+        make_master_flat_file(frames=flats, bias=str(night["out"] / "bias.fits"),
+                              master=str(tmp_path / "f.fits"), qa=str(tmp_path / "f.ecsv"),
+                              instrument=ccd_instrument(), overscan=CONFIG["overscan"],
+                              flat=PIXEL_RESPONSE_FLAT)
+    made, good = read_frame(tmp_path / "f.fits"), night["flat"]
+    assert made.header["NFRAMES"] == 3
+    np.testing.assert_array_equal(made.data, good.data)     # the same three flats
+    with pytest.raises(CalibrationError, match="no usable bias frame.*copy them again"):
+        make_master_bias_file(frames=biases[-1:], master=str(tmp_path / "b0.fits"),
+                              qa=str(tmp_path / "b0.ecsv"), instrument=ccd_instrument())
 
 
 # ---------------------------------------------------------------------------------------
@@ -563,7 +638,7 @@ def test_adapters_other_layout(tmp_path, rng):
     np.testing.assert_allclose(patch, truth, rtol=0.02)
     assert (mf.mask[:4] & MaskBit.UNILLUMINATED).all()
     assert (mf.mask[44:] & MaskBit.UNILLUMINATED).all()
-    assert h["GAIN"] == gain and h["GAINSRC"] == "configured"
+    assert h["GAINUSED"] == gain and h["GAINSRC"] == "configured"
     assert mf.header["GAINMEAS"] == pytest.approx(gain, rel=0.05)
 
 
@@ -731,3 +806,64 @@ def test_demo_raw_headers_do_not_state_the_dispersion_axis(night):
     for key in ("sci", "arc"):
         assert "DISPAXIS" not in fits.getheader(night["paths"][key])
         assert "DISPAXIS" not in fits.getheader(night["out"] / f"{key}_cal.fits")
+
+
+# ---- decisions (pure functions): which gain and read noise, and why -------------------------
+# The contract checked is the one written in DEVELOPERS.md ("CCD calibration"): the measured
+# value is used only when asked for and within tolerance, otherwise the configured one with
+# the reason. Values below are invented round numbers (common practice for unit tests).
+
+def test_gain_choice_follows_the_flat_only_when_it_agreed():
+    base = dict(configured_gain_e_per_adu=1.5, configured_read_noise_e=3.0)
+    c = choose_gain_and_read_noise(**base, flat_gain_e_per_adu=1.6, flat_gain_ok=True)
+    assert (c.gain_e_per_adu, c.gain_source) == (1.6, "measured")
+    c = choose_gain_and_read_noise(**base, flat_gain_e_per_adu=1.6, flat_gain_ok=False)
+    assert (c.gain_e_per_adu, c.gain_source) == (1.5, "configured")
+    c = choose_gain_and_read_noise(**base, flat_gain_e_per_adu=1.6, flat_gain_ok=True,
+                                   use_measured_gain=False)
+    assert c.gain_source == "configured"
+    # a flat whose gain was not measurable writes -1
+    c = choose_gain_and_read_noise(**base, flat_gain_e_per_adu=-1.0, flat_gain_ok=True)
+    assert c.gain_source == "configured"
+
+
+def test_read_noise_choice_uses_the_chosen_gain_and_the_tolerance():
+    base = dict(configured_gain_e_per_adu=1.5, configured_read_noise_e=3.0,
+                flat_gain_e_per_adu=2.0, flat_gain_ok=True)
+    # 1.6 ADU x 2.0 e-/ADU (the measured gain) = 3.2 e-: within 20 % of 3.0
+    c = choose_gain_and_read_noise(**base, bias_read_noise_adu=1.6)
+    assert c.read_noise_source == "measured" and c.read_noise_e == pytest.approx(3.2)
+    assert c.message == ""
+    # 2.0 ADU x 2.0 = 4.0 e-: 33 % off -> configured, with the reason
+    c = choose_gain_and_read_noise(**base, bias_read_noise_adu=2.0)
+    assert (c.read_noise_e, c.read_noise_source) == (3.0, "configured")
+    assert "4.000 e-" in c.message and "20%" in c.message
+    c = choose_gain_and_read_noise(**base, bias_read_noise_adu=2.0, read_noise_tolerance=0.4)
+    assert c.read_noise_source == "measured"
+    c = choose_gain_and_read_noise(**base, bias_read_noise_adu=1.6, use_measured_read_noise=False)
+    assert c.read_noise_source == "configured" and c.message == ""
+    c = choose_gain_and_read_noise(**base, bias_read_noise_adu=-1.0)    # not measured
+    assert c.read_noise_source == "configured" and c.message == ""
+
+
+def test_assess_gain_and_read_noise():
+    c = assess_gain([1.40, float("nan"), 1.44, 1.50], configured_e_per_adu=1.6, tolerance=0.2)
+    assert c.measured_e_per_adu == pytest.approx(1.44)            # median of the finite pairs
+    assert c.within_tolerance and c.for_noise_model_e_per_adu == pytest.approx(1.44)
+    c = assess_gain([1.40], configured_e_per_adu=1.8, tolerance=0.1)   # -22 %
+    assert not c.within_tolerance and c.for_noise_model_e_per_adu == 1.8
+    assert "-22.2%" in c.message
+    c = assess_gain([float("nan")], configured_e_per_adu=1.8, tolerance=0.1)
+    assert math.isnan(c.measured_e_per_adu) and "not measured" in c.message
+    r = assess_read_noise(2.0, gain_e_per_adu=1.5, configured_e=3.5, tolerance=0.2)
+    assert r.measured_e == pytest.approx(3.0) and r.within_tolerance and r.message == ""
+    r = assess_read_noise(2.0, gain_e_per_adu=1.5, configured_e=4.0, tolerance=0.2)
+    assert not r.within_tolerance and "-25.0%" in r.message
+    assert flat_noise_read_noise_adu(2.5, configured_e=3.0, configured_gain_e_per_adu=1.5) == 2.5
+    assert flat_noise_read_noise_adu(-1.0, configured_e=3.0, configured_gain_e_per_adu=1.5) == 2.0
+
+
+def test_cosmic_rays_searched_on_standards_and_science_only():
+    assert [cosmic_ray_search_wanted(t, {"enabled": True}) for t in ("arc", "standard", "science")] \
+        == [False, True, True]
+    assert not cosmic_ray_search_wanted("science", {"enabled": False})

@@ -348,6 +348,10 @@ def test_wcs_and_correction_reproduce_the_reference_row(solved_arc):
     full = world + cheb.chebval(u, coeffs)
     # Q = 0 on the reference row, so WCS + correction is the map there
     assert np.abs(full - m.wave_angstrom[row]).max() < 0.01
+    # axis 2: our own linear axis type, the 0-based detector row (astropy.wcs evaluates it)
+    assert (h["CTYPE2"], h["CUNIT2"]) == ("SLITROW", "pixel")
+    rows = WCS(h).all_pix2world(np.zeros(3), np.array([0.0, 5.0, 40.0]), 0)[1]
+    np.testing.assert_allclose(rows, [0.0, 5.0, 40.0])
 
 
 def test_qa_table_and_figures(solved_arc):

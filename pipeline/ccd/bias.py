@@ -16,6 +16,7 @@ import numpy as np
 from pipeline.core.errors import CalibrationError, CalibrationQualityWarning
 from pipeline.core.maskbits import MASK_DTYPE, MaskBit
 from pipeline.ccd.cards import finite_or
+from pipeline.ccd.screening import PixelStatistics, pixel_problem, pixel_statistics
 from pipeline.ccd.stacking import (NoiseModel, block_rows_for, clipped_mean,
                                    pair_difference_std, robust_std)
 
@@ -42,7 +43,8 @@ class BiasCombination:
         Read noise measured from differences of frame pairs (nan with one frame).
     info : dict
         ``n_frames``, ``pair_read_noise_adu`` (per pair), ``block_rows``,
-        ``n_clipped`` (values rejected), ``mean_level_adu``.
+        ``n_clipped`` (values rejected), ``mean_level_adu``, ``frame_statistics``
+        (:class:`~pipeline.ccd.screening.PixelStatistics` of each input frame).
     """
 
     bias_adu: np.ndarray
@@ -134,11 +136,13 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     out = np.empty(shape, dtype=np.float32)
     used = np.empty(shape, dtype=np.int32)
     stack = np.empty((n, min(block, shape[0]), shape[1]), dtype=np.float32)
+    stats = [PixelStatistics(0, 0, 0, 0, np.inf, -np.inf)] * n
     for r0 in range(0, shape[0], block):
         r1 = min(r0 + block, shape[0])
         s = stack[:, : r1 - r0]
         for i, f in enumerate(frames):
             s[i] = f[r0:r1]
+            stats[i] = stats[i] + pixel_statistics(s[i])
         for j, (a, b) in enumerate(pairs[1:], start=1):
             accumulate(j, s[a], s[b])
         out[r0:r1], used[r0:r1] = clipped_mean(s, sigma=clip_sigma, maxiters=clip_iterations,
@@ -148,9 +152,12 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     var_scale = read_noise ** 2 if math.isfinite(read_noise) else np.nan
     with np.errstate(divide="ignore", invalid="ignore"):
         variance = (var_scale / used).astype(np.float32)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)      # all-NaN output (a bad frame)
+        mean_level = float(np.nanmean(out))
     info = {"n_frames": n, "pair_read_noise_adu": pair_rn, "block_rows": block,
-            "n_clipped": int(n * used.size - used.sum()),
-            "mean_level_adu": float(np.nanmean(out))}
+            "n_clipped": int(n * used.size - used.sum()), "mean_level_adu": mean_level,
+            "frame_statistics": stats}
     return BiasCombination(out, variance, used, read_noise, info)
 
 
@@ -222,6 +229,8 @@ class MasterBias:
     check : ReadNoiseCheck
     combination : BiasCombination
         Orientation of the inputs (raw).
+    used_names : list of str
+        The frames combined (those holding data).
     """
 
     data_adu: np.ndarray
@@ -230,11 +239,12 @@ class MasterBias:
     cards: list
     check: ReadNoiseCheck
     combination: BiasCombination
+    used_names: list
 
 
 def master_bias(frames, *, orientation, gain_e_per_adu, read_noise_e, clip_sigma=3.0,
                 clip_iterations=5, block_rows=128, read_noise_tolerance=0.2,
-                max_read_noise_pairs=3, name="master bias"):
+                max_read_noise_pairs=3, names=None, name="master bias"):
     """Master bias from overscan-corrected, trimmed frames (raw orientation).
 
     Parameters
@@ -246,17 +256,40 @@ def master_bias(frames, *, orientation, gain_e_per_adu, read_noise_e, clip_sigma
         Configured gain and read noise.
     read_noise_tolerance : float
         Relative tolerance of the measured read noise.
+    names : sequence of str, optional
+        Names of the frames (messages; default ``bias frame <i>``).
     name : str
         Names the product in warnings (``CalibrationQualityWarning`` when the read noise
-        is not measured or out of tolerance).
+        is not measured or out of tolerance, or when a frame holds no data and is left out).
+
+    Raises
+    ------
+    CalibrationError
+        When no frame holds data (:func:`~pipeline.ccd.screening.pixel_problem`).
 
     Returns
     -------
     MasterBias
     """
     frames = list(frames)
-    result = combine_bias(frames, clip_sigma=clip_sigma, clip_iterations=clip_iterations,
-                          block_rows=block_rows, max_read_noise_pairs=max_read_noise_pairs)
+    names = list(names) if names is not None else [f"bias frame {i}" for i in range(len(frames))]
+    options = dict(clip_sigma=clip_sigma, clip_iterations=clip_iterations, block_rows=block_rows,
+                   max_read_noise_pairs=max_read_noise_pairs)
+    result = combine_bias(frames, **options)
+    problems = [(i, pixel_problem(st, what="bias frame"))
+                for i, st in enumerate(result.info["frame_statistics"])]
+    problems = [(i, text) for i, text in problems if text]
+    if problems:
+        if len(problems) == len(frames):
+            raise CalibrationError(f"{name}: no usable bias frame: " + "; ".join(
+                f"{names[i]}: {text}" for i, text in problems)
+                + "; expected bias frames with data: copy them again from the telescope")
+        for i, text in problems:
+            warnings.warn(f"{name}: {names[i]} left out: {text}", CalibrationQualityWarning)
+        bad = {i for i, _ in problems}
+        frames = [f for i, f in enumerate(frames) if i not in bad]
+        names = [nm for i, nm in enumerate(names) if i not in bad]
+        result = combine_bias(frames, **options)
     check = assess_read_noise(result.read_noise_adu, gain_e_per_adu=gain_e_per_adu,
                               configured_e=read_noise_e, tolerance=float(read_noise_tolerance),
                               n_frames=len(frames))
@@ -274,6 +307,7 @@ def master_bias(frames, *, orientation, gain_e_per_adu, read_noise_e, clip_sigma
             (read_noise_e / gain_e_per_adu) ** 2)).astype(np.float32)
     cards = [
         ("NFRAMES", len(frames), "bias frames combined"),
+        ("NLEFTOUT", len(problems), "bias frames left out (no data)"),
         ("RNMEAS", finite_or(result.read_noise_adu), "ADU measured read noise (pairs)"),
         ("RNMEASE", finite_or(check.measured_e), "e- measured read noise, configured gain"),
         ("RNCONF", read_noise_e, "e- configured read noise"),
@@ -283,4 +317,4 @@ def master_bias(frames, *, orientation, gain_e_per_adu, read_noise_e, clip_sigma
         ("BIASLEV", result.info["mean_level_adu"], "ADU mean residual level"),
     ]
     return MasterBias(np.where(nonfinite, 0, data).astype(np.float32), variance, mask, cards,
-                      check, result)
+                      check, result, names)

@@ -19,9 +19,11 @@ from pipeline.ccd.cards import finite_or
 from pipeline.ccd.flat_response import normalise_flat
 from pipeline.ccd.gain import assess_gain, flat_noise_read_noise_adu, measure_gain
 from pipeline.ccd.geometry import known_defects_mask
+from pipeline.ccd.screening import MAX_NONFINITE_FRACTION, pixel_problem, pixel_statistics
 from pipeline.ccd.stacking import NoiseModel, block_rows_for, clipped_mean
 
-__all__ = ["FlatCombination", "flat_scale", "combine_flats", "MasterFlat", "master_flat",
+__all__ = ["FlatCombination", "flat_scale", "combine_flats", "flat_problem", "MasterFlat",
+           "master_flat",
            "FLAT_QA_COLUMNS"]
 
 _BAD = MASK_DTYPE(MaskBit.BAD_PIXEL)
@@ -126,6 +128,24 @@ def combine_flats(frames, *, gain_e_per_adu, read_noise_adu, clip_sigma=3.0,
 
 
 
+def flat_problem(stats, level_adu):
+    """Why a bias-subtracted flat holds no usable lamp light ('' when it does).
+
+    ``stats``: :func:`~pipeline.ccd.screening.pixel_statistics` of the flat, whose
+    saturated pixels are NaN; ``level_adu``: :func:`flat_scale`.
+
+    >>> from pipeline.ccd.screening import PixelStatistics
+    >>> flat_problem(PixelStatistics(100, 0, 0, 0, -3.0, 4.0), -0.5)
+    'no lamp light: level -0.5 ADU above the bias'
+    """
+    text = pixel_problem(stats, what="flat")
+    if text and stats.n_nonfinite > MAX_NONFINITE_FRACTION * stats.n:
+        return text + "; saturated pixels count here"
+    if not text and not level_adu > 0:
+        text = f"no lamp light: level {level_adu:.3g} ADU above the bias"
+    return text
+
+
 #: columns of the master-flat QA table: a row per flat (kind 'frame': its level) and per
 #: gain pair (kind 'pair': the mean signal of the tiles used, the pair's gain and tiles)
 FLAT_QA_COLUMNS = ["kind", "frame", "level_adu", "n_saturated", "pair_with",
@@ -202,13 +222,29 @@ def master_flat(frames, *, names, layout, bias_mask, bias_read_noise_adu, gain_e
     frames = list(frames)
     rn_adu = flat_noise_read_noise_adu(bias_read_noise_adu, configured_e=read_noise_e,
                                        configured_gain_e_per_adu=gain_e_per_adu)
-    # pass 1: each flat whole (one at a time, two for the gain pairs)
-    levels, n_sat = [], []
-    for f in frames:
+    names = list(names)
+    # pass 1: each flat whole (one at a time, two for the gain pairs); flats without data
+    # (screening.pixel_problem, or no lamp light above the bias) are left out
+    levels, n_sat, problems = [], [], []
+    for i, f in enumerate(frames):
         frame = f[0:f.shape[0]]
         levels.append(flat_scale(frame))
         n_sat.append(int(np.isnan(frame).sum()))
+        text = flat_problem(pixel_statistics(frame), levels[-1])
+        if text:
+            problems.append((i, text))
         del frame
+    if problems:
+        if len(problems) == len(frames):
+            raise CalibrationError(f"{name}: no usable flat: " + "; ".join(
+                f"{names[i]}: {text}" for i, text in problems)
+                + "; expected lamp flats with data: copy them again from the telescope")
+        for i, text in problems:
+            warnings.warn(f"{name}: {names[i]} left out: {text}", CalibrationQualityWarning)
+        bad = {i for i, _ in problems}
+        keep = [i for i in range(len(frames)) if i not in bad]
+        frames, names = [frames[i] for i in keep], [names[i] for i in keep]
+        levels, n_sat = [levels[i] for i in keep], [n_sat[i] for i in keep]
     order = np.argsort(levels)
     pair_gains, pair_rows = [], []
     for j in range(0, len(order) - 1, 2):
@@ -247,6 +283,7 @@ def master_flat(frames, *, names, layout, bias_mask, bias_read_noise_adu, gain_e
     n_bad = int(((mask & _BAD) != 0).sum())
     cards = [
         ("NFRAMES", len(frames), "flat frames combined"),
+        ("NLEFTOUT", len(problems), "flat frames left out (no data)"),
         ("GAINMEAS", finite_or(gain_meas), "e-/ADU measured gain (photon transfer)"),
         ("GAINCONF", gain_e_per_adu, "e-/ADU configured gain"),
         ("GAINOK", check.within_tolerance, "measured gain within tolerance"),

@@ -12,9 +12,10 @@ from pipeline.ccd.cards import calibrated_header, standard_keyword_cards
 from pipeline.ccd.cosmics import find_cosmic_rays
 from pipeline.ccd.gain import choose_gain_and_read_noise
 from pipeline.ccd.overscan import correct_and_trim
+from pipeline.ccd.screening import pixel_problem, pixel_statistics
 
 __all__ = ["CalibratedFrame", "calibrate_ccd", "FrameProduct", "cosmic_ray_search_wanted",
-           "calibrate_raw_frame"]
+           "raw_noise_keywords", "noise_cards", "calibrate_raw_frame"]
 
 # mask bits as uint8 scalars, so in-place ORs keep the mask dtype
 _BAD = MASK_DTYPE(MaskBit.BAD_PIXEL)
@@ -162,6 +163,38 @@ class FrameProduct:
     cosmic_rays_searched: bool
 
 
+def raw_noise_keywords(instrument):
+    """Raw keywords that hold the gain and read noise (``instrument.*.keyword``).
+
+    They describe the raw ADU; a calibrated frame in electrons does not carry them (its
+    ``GAINUSED``/``RNUSED`` say what was used).
+
+    >>> raw_noise_keywords({"gain_e_per_adu": {"keyword": "GAIN"}, "read_noise_e": {"value": 4.0}})
+    ['GAIN']
+    """
+    names = []
+    for quantity in ("gain_e_per_adu", "read_noise_e"):
+        spec = instrument.get(quantity)
+        if isinstance(spec, dict) and spec.get("keyword"):
+            names.append(str(spec["keyword"]).upper())
+    return names
+
+
+def noise_cards(noise):
+    """Header cards of the gain and read noise a frame was calibrated with, and their sources.
+
+    >>> from pipeline.ccd.gain import NoiseChoice
+    >>> [c[:2] for c in noise_cards(NoiseChoice(1.5, "measured", 3.25, "configured"))]
+    [('GAINUSED', 1.5), ('GAINSRC', 'measured'), ('RNUSED', 3.25), ('RNSRC', 'configured')]
+    """
+    return [("GAINUSED", noise.gain_e_per_adu, "[e-/ADU] gain used to convert to electrons"),
+            ("GAINSRC", noise.gain_source,
+             "GAINUSED: master flat (measured) or configured"),
+            ("RNUSED", noise.read_noise_e, "[e-] read noise used in the variance"),
+            ("RNSRC", noise.read_noise_source,
+             "RNUSED: master bias (measured) or configured")]
+
+
 #: frame types whose cosmic rays are flagged (arcs never are: their lines are sharp)
 COSMIC_RAY_FRAME_TYPES = ("standard", "science")
 
@@ -208,7 +241,20 @@ def calibrate_raw_frame(raw_adu, raw_header, layout, bias, flat, *, frame_type, 
     Returns
     -------
     FrameProduct
+
+    Raises
+    ------
+    ValueError
+        When the data section holds no data (:func:`~pipeline.ccd.screening.pixel_problem`:
+        constant, all zero, saturated or NaN almost everywhere), or the masters do not fit.
     """
+    rows, cols = layout.data.slices
+    problem = pixel_problem(pixel_statistics(np.asarray(raw_adu)[rows, cols],
+                                             saturation=instrument.get("saturation_adu")),
+                            what=f"{frame_type} frame")
+    if problem:
+        raise ValueError(f"{problem}; expected a {frame_type} frame with data: copy it again "
+                         "from the telescope, or take it out of the raw folder")
     noise = choose_gain_and_read_noise(
         configured_gain_e_per_adu=gain_e_per_adu, configured_read_noise_e=read_noise_e,
         flat_gain_e_per_adu=float(flat.header.get("GAINMEAS", -1)),
@@ -233,10 +279,10 @@ def calibrate_raw_frame(raw_adu, raw_header, layout, bias, flat, *, frame_type, 
                                keep=[v for v in (keywords or {}).values() if isinstance(v, str)])
     for card in standard_keyword_cards(raw_header, keywords):
         header[card[0]] = card[1:]
-    header["GAIN"] = (noise.gain_e_per_adu, "e-/ADU gain used to convert to electrons")
-    header["GAINSRC"] = (noise.gain_source, "where GAIN came from")
-    header["RDNOISE"] = (noise.read_noise_e, "e- read noise used in the variance")
-    header["RDNSSRC"] = (noise.read_noise_source, "where RDNOISE came from")
+    for key in raw_noise_keywords(instrument):
+        header.remove(key, ignore_missing=True, remove_all=True)
+    for key, value, comment in noise_cards(noise):
+        header[key] = (value, comment)
     header["NSATUR"] = (result.info["n_saturated"], "saturated pixels")
     header["CRFLAGGD"] = (do_cr, "cosmic rays searched (van Dokkum 2001)")
     header["NCOSMIC"] = (result.info["n_cosmic"], "pixels flagged as cosmic rays")

@@ -6,11 +6,12 @@ Their keyword arguments are the rule's named inputs, outputs and params.
 """
 
 import logging
+import warnings
 from pathlib import Path
 
 from pipeline.core import headers as hdr
 from pipeline.core.checks import merge_options
-from pipeline.core.errors import CalibrationError, InputFileError
+from pipeline.core.errors import CalibrationError, CalibrationQualityWarning, InputFileError
 from pipeline.ccd.bias import master_bias
 from pipeline.ccd.cards import calibrated_header
 from pipeline.ccd.flat import FLAT_QA_COLUMNS, master_flat
@@ -83,10 +84,17 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
         raise CalibrationError(f"{master}: no bias frame given")
     ov_opts = overscan_kwargs(overscan)
     opts = merge_options(bias, BIAS_DEFAULTS, "bias")
-    readers = []
+    readers, unreadable = [], []
     try:
         for p in paths:
-            readers.append(RawRows(p, instrument, ov_opts))
+            try:
+                readers.append(RawRows(p, instrument, ov_opts))
+            except InputFileError as exc:      # one bad bias must not lose the master
+                unreadable.append(str(exc))
+        if not readers:
+            raise CalibrationError(f"{master}: no usable bias frame: " + "; ".join(unreadable))
+        for text in unreadable:
+            warnings.warn(f"{master}: bias frame left out: {text}", CalibrationQualityWarning)
         shapes = {r.shape for r in readers}
         if len(shapes) > 1:
             raise CalibrationError(f"{master}: bias frames differ in trimmed shape "
@@ -95,7 +103,8 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
         gain_conf = _configured(first.header, instrument, "gain_e_per_adu", path=first.path)
         rn_conf = _configured(first.header, instrument, "read_noise_e", path=first.path)
         product = master_bias(readers, orientation=first.layout.orientation,
-                              gain_e_per_adu=gain_conf, read_noise_e=rn_conf, name=master, **opts)
+                              gain_e_per_adu=gain_conf, read_noise_e=rn_conf,
+                              names=[Path(r.path).name for r in readers], name=master, **opts)
     finally:
         for r in readers:
             r.close()
@@ -110,12 +119,13 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
             "read_noise_configured_e": rn_conf, "gain_configured_e_per_adu": gain_conf,
             "read_noise_within_tolerance": check.within_tolerance, "tolerance": check.tolerance,
             "pair_read_noise_adu": [float(v) for v in result.info["pair_read_noise_adu"]],
-            "n_frames": len(paths), "n_clipped": result.info["n_clipped"],
+            "n_frames": len(product.used_names), "n_given": len(paths),
+            "n_clipped": result.info["n_clipped"],
             "mean_level_adu": result.info["mean_level_adu"], "block_rows": opts["block_rows"],
             "overscan_method": ov_opts["method"]}
     _write_qa_table(rows, ["frame", "overscan_level_adu", "overscan_rms_adu"], meta, qa)
     log.info("master bias %s: %d frames, read noise %.3f ADU = %.3f e- (configured %.3f e-)",
-             master, len(paths), result.read_noise_adu, check.measured_e, rn_conf)
+             master, len(product.used_names), result.read_noise_adu, check.measured_e, rn_conf)
     return master
 
 
@@ -222,8 +232,10 @@ def calibrate_frame_file(*, raw, bias, flat, calibrated, frame_type, instrument,
     Notes
     -----
     Which gain and read noise are used, and why, is decided by
-    :func:`pipeline.ccd.gain.choose_gain_and_read_noise`; header keywords ``GAIN`` and
-    ``RDNOISE`` record what was used, ``GAINSRC``/``RDNSSRC`` where it came from.
+    :func:`pipeline.ccd.gain.choose_gain_and_read_noise`; header keywords ``GAINUSED``
+    and ``RNUSED`` record what was used, ``GAINSRC``/``RNSRC`` where it came from. The raw
+    gain and read-noise cards named in the instrument config are not copied (the frame is
+    in electrons).
     """
     from pipeline.core.frames import Frame, write_frame
     from pipeline.core.provenance import stamp

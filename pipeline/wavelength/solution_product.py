@@ -72,7 +72,8 @@ def solution_header(solution, *, arc_header=None, setup="", arc_name=""):
     astropy.io.fits.Header
         Axis 1 is the dispersion: ``CTYPE1 = 'AWAV-GRA'`` evaluates the fitted
         grating model on row ``WSYREF`` (the Chebyshev correction ``WCCn`` is to be
-        added, see :data:`HEADER_KEYWORDS`); axis 2 is the slit pixel (linear).
+        added, see :data:`HEADER_KEYWORDS`); axis 2 is the detector row along the slit
+        (``CTYPE2 = 'SLITROW'``, a linear coordinate of our own, in pixels, 0-based).
     """
     from astropy.io import fits
 
@@ -90,7 +91,8 @@ def solution_header(solution, *, arc_header=None, setup="", arc_name=""):
     h["WCSAXES"] = 2
     for key, value, comment in gr.grating_wcs_cards(m, axis=1):
         h[key] = (value, comment)
-    h["CTYPE2"] = ("LINEAR", "slit pixel")
+    h["CTYPE2"] = ("SLITROW", "detector row along the slit (0-based)")
+    h["CUNIT2"] = ("pixel", "")
     h["CRPIX2"] = (s1.reference_row + 1.0, "reference row (1-based)")
     h["CRVAL2"] = (s1.reference_row, "[px] 0-based row at CRPIX2")
     h["CDELT2"] = (1.0, "[px]")
