@@ -17,8 +17,9 @@ __all__ = ["PixelStatistics", "pixel_statistics", "pixel_problem",
 #: frames with more than this fraction of NaN/inf pixels are not data (common practice:
 #: a real frame has a few bad columns at most)
 MAX_NONFINITE_FRACTION = 0.5
-#: frames with more than this fraction of saturated pixels are not data
-MAX_SATURATED_FRACTION = 0.99
+#: frames with more than this fraction of saturated pixels are not data (the default of
+#: inventory.max_saturated_fraction, which screens a sample of rows at inventory)
+MAX_SATURATED_FRACTION = 0.5
 
 
 @dataclass(frozen=True)

@@ -28,7 +28,7 @@ class WavelengthMap:
 
 
 def load_wavelength_map(path):
-    """Read the dense wavelength map written by :func:`solve_wavelength_file`.
+    """Read the dense wavelength map written by :func:`pipeline.wavelength.steps.solve_wavelength_file`.
 
     Returns
     -------
