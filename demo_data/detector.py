@@ -10,6 +10,13 @@ canonical orientation (``canonical[y, x]``, wavelength increasing with ``x``) is
     canonical[y, x] = raw[nxb - 1 - x, y]      i.e.  canonical = raw[::-1, :nyb].T
 
 and back ``raw[:, :nyb] = canonical.T[::-1]``.
+
+A detector with ``layout='wren'`` (the second invented instrument, WREN) reads out
+the other way: numpy ``raw[r, c]`` with ``r`` along the slit (FITS axis 2) and
+``c`` along the dispersion (FITS axis 1), wavelength INCREASING with ``c``;
+``n_prescan`` prescan columns, then the data, then ``n_overscan`` overscan columns:
+
+    canonical[y, x] = raw[y, n_prescan + x]
 """
 
 import functools
@@ -78,6 +85,10 @@ class Detector:
         Largest value the ADC delivers (digital saturation).
     seed : int
         Seed of the fixed detector properties (response map, bias pattern).
+    layout : {'rls', 'wren'}
+        Raw readout layout (module docstring).
+    n_prescan : int
+        Prescan columns before the data of each raw row ('wren' layout only).
     """
 
     nx_phys: int = 2048
@@ -100,6 +111,8 @@ class Detector:
     readout_time_s: float = 20.0
     adc_max_adu: int = 65535
     seed: int = 20260314
+    layout: str = "rls"
+    n_prescan: int = 0
 
     @property
     def nxb(self):
@@ -111,19 +124,54 @@ class Detector:
 
     @property
     def raw_shape(self):
+        if self.layout == "wren":
+            return (self.nyb, self.n_prescan + self.nxb + self.n_overscan)
         return (self.nxb, self.nyb + self.n_overscan)
 
     @property
+    def data_slice(self):
+        """numpy (rows, columns) slices of the data section in the raw array."""
+        if self.layout == "wren":
+            return (slice(None), slice(self.n_prescan, self.n_prescan + self.nxb))
+        return (slice(None), slice(0, self.nyb))
+
+    @property
+    def overscan_slice(self):
+        if self.layout == "wren":
+            start = self.n_prescan + self.nxb
+            return (slice(None), slice(start, start + self.n_overscan))
+        return (slice(None), slice(self.nyb, self.nyb + self.n_overscan))
+
+    def to_raw(self, canonical):
+        """Canonical ``(nyb, nxb)`` -> raw data section (layout of this detector)."""
+        if self.layout == "wren":
+            return np.ascontiguousarray(np.asarray(canonical))
+        return canonical_to_raw(canonical)
+
+    def to_canonical(self, raw):
+        """Raw frame (full, with prescan/overscan) -> canonical data ``(nyb, nxb)``."""
+        if self.layout == "wren":
+            return np.ascontiguousarray(np.asarray(raw)[self.data_slice])
+        return raw_to_canonical(raw, self.nyb)
+
+    @property
     def ccdsum(self):
-        """CCDSUM value: binning along FITS axis 1 (slit), then FITS axis 2 (dispersion)."""
+        """CCDSUM value: binning along FITS axis 1, then FITS axis 2."""
+        if self.layout == "wren":
+            return f"{self.bin_x} {self.bin_y}"
         return f"{self.bin_y} {self.bin_x}"
 
     @property
     def datasec(self):
+        if self.layout == "wren":
+            return f"[{self.n_prescan + 1}:{self.n_prescan + self.nxb},1:{self.nyb}]"
         return f"[1:{self.nyb},1:{self.nxb}]"
 
     @property
     def biassec(self):
+        if self.layout == "wren":
+            start = self.n_prescan + self.nxb
+            return f"[{start + 1}:{start + self.n_overscan},1:{self.nyb}]"
         return f"[{self.nyb + 1}:{self.nyb + self.n_overscan},1:{self.nxb}]"
 
     def bad_columns_binned(self):
@@ -162,11 +210,12 @@ class Detector:
         return bin_sum(dark, self.bin_y, self.bin_x)
 
     def bias_pattern_adu(self):
-        """Fixed 2-D bias structure of the data columns (raw layout, ADU, mean 0)."""
+        """Fixed 2-D bias structure of the data columns (raw layout data section, ADU, mean 0)."""
         rng = np.random.default_rng([self.seed, 2])
-        c = np.arange(self.nyb)
-        cols = 0.35 * np.sin(2 * np.pi * c / 97.0) + 0.25 * rng.standard_normal(self.nyb)
-        return np.broadcast_to(cols[None, :], (self.nxb, self.nyb)).copy()
+        nrow, ncol = self.to_raw(np.zeros((self.nyb, self.nxb))).shape
+        c = np.arange(ncol)
+        cols = 0.35 * np.sin(2 * np.pi * c / 97.0) + 0.25 * rng.standard_normal(ncol)
+        return np.broadcast_to(cols[None, :], (nrow, ncol)).copy()
 
     # -- per-frame effects ------------------------------------------------------
     def cosmic_rays(self, exptime_s, rng):
@@ -203,13 +252,13 @@ class Detector:
         transient + a per-frame offset + row-to-row jitter (shared by data and
         overscan, so the overscan tracks it) + the fixed column pattern (data only).
         """
-        nr = self.nxb
+        nr = self.raw_shape[0]
         r = np.arange(nr)
         level = (self.bias_level_adu + rng.normal(0.0, 1.5) + 4.0 * r / nr
                  + 2.5 * np.exp(-r / 30.0) + rng.normal(0.0, 0.7, nr))
         bias = np.empty(self.raw_shape)
         bias[:, :] = level[:, None]
-        bias[:, :self.nyb] += self.bias_pattern_adu()
+        bias[self.data_slice] += self.bias_pattern_adu()
         return bias, level
 
     def read_out(self, expected_e, exptime_s, rng, *, poisson=True, read_noise=True,
@@ -243,7 +292,7 @@ class Detector:
             cosmic, n_cosmic = np.zeros_like(electrons), 0
         bias, level = self.bias_frame_adu(rng)
         adu = bias.copy()
-        adu[:, :self.nyb] += canonical_to_raw(electrons) / self.gain_e_per_adu
+        adu[self.data_slice] += self.to_raw(electrons) / self.gain_e_per_adu
         if read_noise:
             adu += rng.normal(0.0, self.read_noise_e / self.gain_e_per_adu, adu.shape)
         adu = np.floor(adu + 0.5)
@@ -271,4 +320,5 @@ class Detector:
             "readout_time_s": self.readout_time_s,
             "adc_max_adu": self.adc_max_adu,
             "datasec": self.datasec, "biassec": self.biassec, "ccdsum": self.ccdsum,
+            "layout": self.layout, "n_prescan": self.n_prescan,
         }

@@ -67,6 +67,8 @@ class GratingOptics:
         Amplitude of the cubic distortion term (unbinned px at the detector ends).
     line_tilt_px_per_px : float
         Shear ``dX/dY`` of monochromatic lines (rotation of slit vs detector).
+    blaze_wavelength_angstrom : float
+        Littrow blaze wavelength of the grating (throughput only).
     """
 
     tilt_deg: float
@@ -80,6 +82,7 @@ class GratingOptics:
     detector_offset_px: float = 0.0
     distortion_a3_px: float = 0.0
     line_tilt_px_per_px: float = 0.0
+    blaze_wavelength_angstrom: float = 5500.0
 
     # -- derived quantities -------------------------------------------------
     @property
@@ -196,4 +199,5 @@ class GratingOptics:
             "detector_offset_px": float(self.detector_offset_px),
             "distortion_a3_px": float(self.distortion_a3_px),
             "line_tilt_px_per_px": float(self.line_tilt_px_per_px),
+            "blaze_wavelength_angstrom": float(self.blaze_wavelength_angstrom),
         }
