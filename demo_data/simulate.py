@@ -1389,6 +1389,8 @@ def write_truth(night, truth_dir, *, models=None):
         if tr.optics is not None:
             entry.update(setup=setup_name(spec.grtilt_deg, spec.filter_name, inst),
                          flexure_x_px=tr.flexure_x_px)
+        if "tilt_reading_deg" in tr.info:
+            entry["tilt_reading_deg"] = tr.info["tilt_reading_deg"]
         ys, xs = np.nonzero(tr.cosmic_e > 0)
         cr_rows["frame_id"] += [fid] * len(ys)
         cr_rows["y_px"] += ys.tolist()

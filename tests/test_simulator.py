@@ -761,3 +761,166 @@ def test_repeated_exposures_and_overlapping_setups(night_dir, index):
                                   for s in sorted(index["setups"]))
     overlap = min(hi_a, hi_b) - max(lo_a, lo_b)
     assert 200.0 < overlap < 800.0
+
+
+# ----------------------------------------------------------------------------- second instrument (WREN)
+@pytest.fixture(scope="module")
+def wren_dir(tmp_path_factory):
+    """The WREN night made through the documented command line."""
+    out = tmp_path_factory.mktemp("wren") / "raw"
+    subprocess.run([sys.executable, "-m", "demo_data.simulate", "--out", str(out), "--instrument",
+                    "wren", "--quiet"], check=True, cwd=REPO, timeout=900)
+    return out
+
+
+@pytest.fixture(scope="module")
+def wren_index(wren_dir):
+    return json.loads((wren_dir / "truth" / "index.json").read_text())
+
+
+def test_wren_pixels_in_an_image_extension_dispersion_along_axis_1(wren_dir, wren_index):
+    """Arc lines where the grating equation (solved here, bx = 2, by = 1) puts them, counted
+    in RAW columns of the RAWPIX extension: x_raw = 8 (prescan) + x, wavelength increasing."""
+    with fits.open(wren_dir / "wren_0012.fits") as hdul:
+        assert len(hdul) == 2 and hdul[0].data is None
+        assert hdul[1].name == "RAWPIX" and isinstance(hdul[1], fits.ImageHDU)
+        raw = hdul[1].data.astype(float)
+        ext, prim = hdul[1].header, hdul[0].header
+    assert raw.shape == (220, 8 + 800 + 24)
+    assert ext["DETBIN"] == "2 1" and ext["DATAREG"] == "[9:808,1:220]"
+    assert ext["OSCANREG"] == "[809:832,1:220]" and "EGAIN" not in prim
+    assert prim["EXPKIND"] == "COMPARC" and prim["CALSRC"] == "NEON+KRYPTON+XENON"
+    entry = wren_index["frames"]["wren_0012"]
+    optics = wren_index["setups"][entry["setup"]]["optics"]
+    lines = Table.read(wren_dir / "truth" / entry["lines"])
+    strongest = lines[np.argsort(lines["electrons_total"])[::-1]]
+    row = 110
+    checked = 0
+    for ln in strongest[:12]:
+        x = grating_x_binned(ln["wavelength_air_angstrom"], row, optics, bx=2, by=1,
+                             flexure_b=entry["flexure_x_px"])
+        if not 10 < x < 790:
+            continue
+        c = 8 + int(round(x))
+        seg = raw[row, c - 4:c + 5] - np.median(raw[row, 809:832])
+        centroid = (seg * np.arange(c - 4, c + 5)).sum() / seg.sum()
+        if np.all(np.abs(strongest["x_px_centre_row"] - x)[np.abs(strongest["x_px_centre_row"] - x) > 0.01] > 6):
+            assert abs(centroid - (8 + x)) < 0.15, ln["wavelength_air_angstrom"]
+            checked += 1
+    assert checked >= 3
+    # wavelength increases with the raw column (the RLS: decreases along its raw rows)
+    wmap = fits.getdata(wren_dir / "truth" / wren_index["setups"][entry["setup"]]["wavelength_map"])
+    assert wmap.shape == (220, 800) and np.all(np.diff(wmap, axis=1) > 0)
+    # 2 x 1 binning: 1600 x 220 unbinned pixels -> 800 data columns x 220 rows (shape above)
+    det = wren_index["instrument"]["detector"]
+    assert (det["nx_phys"] // det["bin_x"], det["ny_phys"] // det["bin_y"]) == (800, 220)
+    assert wren_index["raw_to_canonical"] == {"pixel_hdu": "RAWPIX", "transpose": False,
+                                              "flip_x": False, "flip_y": False,
+                                              "data_rows": [0, 220], "data_columns": [8, 808]}
+
+
+def test_wren_grating_readings_jitter_across_the_rounding_boundary(wren_dir, wren_index):
+    by_setup = {}
+    for fid, entry in wren_index["frames"].items():
+        if entry["defect"] == "truncated":
+            continue
+        hdr = fits.getheader(wren_dir / entry["file"], 0)
+        if entry.get("setup"):
+            by_setup.setdefault(entry["setup"], []).append(hdr["GRATPOS"])
+            assert hdr["GRATPOS"] == entry["tilt_reading_deg"]
+    assert len(by_setup) == 2
+    for setup, readings in by_setup.items():
+        readings = np.array(readings)
+        assert 1e-4 < np.ptp(readings) < 6e-4, setup
+        assert len({f"{r:.2f}" for r in readings}) == 2, setup      # straddles x.xx5
+        # one true grating angle per setup, whatever the reading: nominal + the encoder zero point
+        nominal = wren_index["conventions"]["setups"][setup]["grating_angle_nominal_deg"]
+        assert wren_index["setups"][setup]["optics"]["tilt_deg"] == pytest.approx(
+            nominal + wren_index["instrument"]["tilt_error_deg"], abs=1e-12)
+
+
+def test_wren_headers_sexagesimal_and_airmass_at_start(wren_dir, wren_index):
+    from astropy.coordinates import SkyCoord
+    import astropy.units as u
+
+    galaxy = []
+    for fid, entry in wren_index["frames"].items():
+        if entry["kind"] not in ("science", "standard") or entry["defect"] == "truncated":
+            continue
+        hdr = fits.getheader(wren_dir / entry["file"], 0)
+        tgt = wren_index["targets"][entry["target"]]
+        c = SkyCoord(hdr["POINTRA"], hdr["POINTDEC"], unit=(u.hourangle, u.deg))
+        assert c.separation(SkyCoord(tgt["ra_deg"] * u.deg, tgt["dec_deg"] * u.deg)).arcsec < 0.1
+        assert hdr["AMSTART"] == pytest.approx(entry["airmass_start"], abs=1e-4)
+        assert hdr["EXPKIND"] == {"science": "SCIENCE", "standard": "FLUXSTD"}[entry["kind"]]
+        assert hdr["SHUTOPEN"] == entry["date_obs"] and hdr["SHUTTIME"] == entry["exptime_s"]
+        if entry["target"] == "FHV-G27" and entry["defect"] == "":
+            galaxy.append(entry)
+    assert len(galaxy) == 2
+    for entry in galaxy:
+        assert 1.7 < entry["airmass_start"] < 1.9
+        assert 0.08 < abs(entry["airmass_exposure_mean"] - entry["airmass_start"]) < 0.2
+
+
+@pytest.mark.filterwarnings("ignore:File may have been truncated")
+def test_wren_hostile_files(wren_dir, wren_index):
+    defects = {e["defect"]: (fid, e) for fid, e in wren_index["frames"].items() if e["defect"]}
+    assert set(defects) == {"saturated_everywhere", "all_zero", "mostly_nan", "truncated"}
+    assert all(e["expected_pipeline_status"] == "rejected" for _, e in defects.values())
+    sat = fits.getdata(wren_dir / defects["saturated_everywhere"][1]["file"], "RAWPIX")
+    assert sat.dtype == np.uint16 and np.all(sat == 65535)
+    assert defects["saturated_everywhere"][1]["kind"] == "science"
+    zero = fits.getdata(wren_dir / defects["all_zero"][1]["file"], "RAWPIX")
+    assert zero.shape == (220, 832) and np.all(zero == 0)
+    nan = fits.getdata(wren_dir / defects["mostly_nan"][1]["file"], "RAWPIX")
+    assert nan.dtype.kind == "f" and 0.9 < np.mean(np.isnan(nan)) < 1.0
+    good = nan[np.isfinite(nan)]
+    assert 1400 < np.median(good) < 1700        # the rest are real ADU (bias 1500)
+    with pytest.raises(Exception):
+        with fits.open(wren_dir / defects["truncated"][1]["file"]) as hdul:
+            hdul.verify("exception")
+            _ = hdul["RAWPIX"].data.sum()
+
+
+def test_wren_standard_table_in_nm_vacuum_ab_magnitudes():
+    """AB magnitude of the bin-averaged f_nu, recomputed here: f_nu = f_lambda lambda^2 / c
+    (lambda vacuum), integrated with scipy.integrate.quad."""
+    t = Table.read(REPO / "demo_data" / "standards" / "FHV-S4.ecsv")
+    assert str(t["wavelength"].unit) == "nm" and t.meta["wavelength_medium"] == "vacuum"
+    assert str(t["ab_mag"].unit) == "mag(AB)"
+    c = 2.99792458e18      # A/s
+    star = src.WREN_TARGETS["FHV-S4"].continuum
+    for i in (5, 120, 280):
+        lo, hi = 10 * (t["wavelength"][i] - t["bin_width"][i] / 2), 10 * (t["wavelength"][i] + t["bin_width"][i] / 2)
+        mean = quad(lambda lam: star(lam) * lam ** 2 / c, lo, hi)[0] / (hi - lo)
+        assert t["ab_mag"][i] == pytest.approx(-2.5 * np.log10(mean) - 48.60, abs=1e-6)
+    ext = Table.read(REPO / "demo_data" / "fellhaven_extinction.ecsv")
+    tarn = Table.read(REPO / "demo_data" / "tarn_ridge_extinction.ecsv")
+    k = np.interp(5500.0, ext["wavelength_angstrom"], ext["extinction_mag_per_airmass"])
+    assert k > np.interp(5500.0, tarn["wavelength_angstrom"], tarn["extinction_mag_per_airmass"]) + 0.03
+
+
+def test_wren_faint_galaxy_beside_a_brighter_field_star():
+    inst = sim.make_instrument(instrument="wren")
+    frame = sim.make_science(inst, 12.345, target="FHV-G27", filter_name="CLEAR", exptime_s=1800.0,
+                             airmass=1.9, moffat_beta=3.0, seeing_fwhm_arcsec=1.5,
+                             companions=(("FHV-F2", 62.0),), sky=False, poisson=False,
+                             read_noise=False, cosmic_rays=False)
+    gal = frame.truth.components["object"].astype(float)
+    star = frame.truth.components["star1"].astype(float)
+    # continuum ~1 e- per binned pixel per row near the nucleus (line-free columns)
+    core = np.median(gal[105:116, 50:300])
+    assert 0.5 < core < 2.0
+    comp = frame.truth.info["companions"][0]
+    assert comp["target"] == "FHV-F2"
+    centroid = (star * np.arange(220)[:, None]).sum(axis=0) / star.sum(axis=0)
+    np.testing.assert_allclose(centroid[20:-20], comp["trace"]["trace_y_px"][20:-20], atol=0.02)
+    assert np.median(star.sum(axis=0)) > 20 * np.median(gal.sum(axis=0)[50:300]) / 10
+    # the arcs use only verified (non-memory) reference rows, of the WREN lamps' species
+    arc = sim.make_arc(inst, 17.885, lamps="KRYPTON+XENON", filter_name="LP570", poisson=False,
+                       read_noise=False, cosmic_rays=False)
+    verified = {float(r["wavelength_air_angstrom"]) for r in _ref_rows("arc_lines_air.csv")
+                if r["source"] != "memory" and r["species"] in ("Kr I", "Xe I")}
+    waves = set(arc.truth.info["lines"]["wavelength_air_angstrom"].tolist())
+    assert waves <= verified and len(waves) >= 20
+    assert set(arc.truth.info["lines"]["species"]) == {"Kr I", "Xe I"}
