@@ -1,19 +1,29 @@
-# Long-slit reduction of one night. Rules live in pipeline/rules/*.smk and only
-# wire files to the step adapters in pipeline/ (see DEVELOPERS.md).
-from snakemake.utils import min_version, validate
+# Long-slit reduction of one night. Rules live in pipeline/rules/*.smk and only wire files to
+# the step adapters; every path, param and product list comes from the night's plan
+# (pipeline/workflow/plan.py, see DEVELOPERS.md).
+import sys
+
+from snakemake.utils import min_version
 
 min_version("8.0")
 
+
 configfile: f"{workflow.basedir}/config/config.yaml"
 
-from pipeline.workflow.config_check import check_config
 
-# Every problem on its own line, naming the key; then Snakemake fills the schema defaults.
-check_config(config, f"{workflow.basedir}/config/schema.yaml")
-validate(config, "config/schema.yaml")
+from pipeline.workflow.config_check import validated_config
+from pipeline.workflow.plan import NightPlan, ensure_demo_night
+
+# Every problem on its own line, naming the key; then the schema defaults are filled in.
+validated_config(config, f"{workflow.basedir}/config/schema.yaml")
+ensure_demo_night(config["raw_dir"], workflow.basedir, enabled=config["make_demo_night_if_missing"])
+PLAN = NightPlan.from_config(config)
+# Snakemake hides warnings raised while it parses; say the rejections here (also in night_log.ecsv).
+for _problem in PLAN.night.problems():
+    print(f"night inventory: {_problem}", file=sys.stderr)
+RUN_STEP = "../workflow/run_step.py"
 
 
-include: "pipeline/rules/common.smk"
 include: "pipeline/rules/night.smk"
 include: "pipeline/rules/ccd.smk"
 include: "pipeline/rules/wavelength.smk"
@@ -32,5 +42,5 @@ localrules:
 
 rule all:
     input:
-        all_products(),
+        PLAN.all_products(),
     default_target: True

@@ -1,59 +1,60 @@
-# CCD calibration (pipeline/ccd/): master bias per
-# readout mode, master flat per setup, and calibrated arcs, standards and science frames.
-# Each rule's params hold exactly the config values its step reads, so changing a flat
-# option reruns the flats and what follows, not the biases.
+# CCD calibration (pipeline/ccd/): master bias per readout mode, master flat per setup, and
+# calibrated arcs, standards and science frames. Each rule's params hold exactly the config
+# values its step reads, so changing a flat option reruns the flats and what follows, not
+# the biases.
+
 
 rule master_bias:
     input:
-        frames=lambda wc: [rec.path for rec in NIGHT.frames("bias") if rec.readout == wc.readout],
+        frames=lambda wc: PLAN.bias_frames(wc.readout),
     output:
-        master=out("calibrations", "master_bias_{readout}.fits"),
-        qa=out("calibrations", "master_bias_{readout}_qa.ecsv"),
+        master=PLAN.out("calibrations", "master_bias_{readout}.fits"),
+        qa=PLAN.out("calibrations", "master_bias_{readout}_qa.ecsv"),
     wildcard_constraints:
         readout=r"[A-Za-z0-9.-]+(_[A-Za-z0-9.-]+)*",
     params:
-        instrument=ccd_instrument(saturation=False),
-        overscan=config.get("overscan", {}),
-        bias=config.get("bias", {}),
+        instrument=PLAN.ccd_instrument(saturation=False),
+        overscan=PLAN.section("overscan"),
+        bias=PLAN.section("bias"),
     log:
-        log_path("master_bias", "{readout}"),
+        PLAN.log("master_bias", "{readout}"),
     script:
         RUN_STEP
 
 
 rule master_flat:
     input:
-        frames=lambda wc: [rec.path for rec in NIGHT.flats_for(wc.setup)],
-        bias=lambda wc: master_bias_path(NIGHT.setup_readout(wc.setup)),
+        frames=lambda wc: PLAN.flat_frames(wc.setup),
+        bias=lambda wc: PLAN.setup_bias_path(wc.setup),
     output:
-        master=out("calibrations", "master_flat_{setup}.fits"),
-        qa=out("calibrations", "master_flat_{setup}_qa.ecsv"),
+        master=PLAN.out("calibrations", "master_flat_{setup}.fits"),
+        qa=PLAN.out("calibrations", "master_flat_{setup}_qa.ecsv"),
     wildcard_constraints:
         setup=r"[A-Za-z0-9._-]+",
     params:
-        instrument=ccd_instrument(),
-        overscan=config.get("overscan", {}),
-        flat=config.get("flat", {}),
+        instrument=PLAN.ccd_instrument(),
+        overscan=PLAN.section("overscan"),
+        flat=PLAN.section("flat"),
     log:
-        log_path("master_flat", "{setup}"),
+        PLAN.log("master_flat", "{setup}"),
     script:
         RUN_STEP
 
 
 rule calibrate_frame:
     input:
-        unpack(_frame_calibrations),
+        unpack(lambda wc: PLAN.frame_calibrations(wc.frame)),
     output:
-        calibrated=out("calibrated", "{frame}.fits"),
+        calibrated=PLAN.out("calibrated", "{frame}.fits"),
     wildcard_constraints:
         frame=r"[A-Za-z0-9._-]+",
     params:
-        frame_type=lambda wc: NIGHT.record(wc.frame).frame_type,
-        instrument=key_order_free(ccd_instrument()),
-        keywords=key_order_free(INSTRUMENT.get("keywords", {})),
-        overscan=config.get("overscan", {}),
-        calibration=calibration_options,
+        frame_type=lambda wc: PLAN.frame_type(wc.frame),
+        instrument=PLAN.ccd_instrument(),
+        keywords=PLAN.keywords(),
+        overscan=PLAN.section("overscan"),
+        calibration=lambda wc: PLAN.calibration_options(wc.frame),
     log:
-        log_path("calibrate_frame", "{frame}"),
+        PLAN.log("calibrate_frame", "{frame}"),
     script:
         RUN_STEP

@@ -1,49 +1,47 @@
-# Wavelength calibration (pipeline/wavelength/arclines.py, pipeline/wavelength/solve.py): lines of every usable
-# arc are found and measured, then identified with the grating model as seed and fitted in
-# 1-D and 2-D. A setup whose identification fails stops that job with a clear message and
-# writes nothing; the other jobs go on (keep-going).
+# Wavelength calibration (pipeline/wavelength/): lines of every usable arc are found and
+# measured, then identified with the grating model as seed and fitted in 1-D and 2-D. A setup
+# whose identification fails stops that job with a clear message and writes nothing; the
+# other jobs go on (keep-going).
+
+
 rule find_arc_lines:
     input:
-        arc=out("calibrated", "{arc}.fits"),
+        arc=PLAN.out("calibrated", "{arc}.fits"),
     output:
-        lines=out("wavelength", "{arc}_lines.ecsv"),
+        lines=PLAN.out("wavelength", "{arc}_lines.ecsv"),
     wildcard_constraints:
-        arc=_WS_ARC_PATTERN,
+        arc=PLAN.arc_pattern(),
     params:
-        **config.get("arc_lines", {}),
+        **PLAN.arc_line_options(),
     log:
-        log_path("find_arc_lines", "{arc}"),
+        PLAN.log("find_arc_lines", "{arc}"),
     script:
         RUN_STEP
 
 
 rule solve_wavelength:
     input:
-        arc=out("calibrated", "{arc}.fits"),
-        lines=out("wavelength", "{arc}_lines.ecsv"),
-        line_list=WAVELENGTH_LINE_LIST,
+        arc=PLAN.out("calibrated", "{arc}.fits"),
+        lines=PLAN.out("wavelength", "{arc}_lines.ecsv"),
+        line_list=PLAN.line_list(),
     output:
-        solution=out("wavelength", "{arc}_solution.fits"),
-        qa=out("wavelength", "{arc}_qa.ecsv"),
-        plot_lines=report(out("qa", "{arc}_wavelength_lines.png"), category="Wavelength",
+        solution=PLAN.out("wavelength", "{arc}_solution.fits"),
+        qa=PLAN.out("wavelength", "{arc}_qa.ecsv"),
+        plot_lines=report(PLAN.out("qa", "{arc}_wavelength_lines.png"), category="Wavelength",
                           caption="captions/wavelength_lines.rst"),
-        plot_residuals=report(out("qa", "{arc}_wavelength_residuals.png"), category="Wavelength",
-                              caption="captions/wavelength_residuals.rst"),
-        plot_residual_map=report(out("qa", "{arc}_wavelength_residual_map.png"),
-                                 category="Wavelength", caption="captions/wavelength_residual_map.rst"),
-        plot_dispersion=report(out("qa", "{arc}_wavelength_dispersion.png"), category="Wavelength",
-                               caption="captions/wavelength_dispersion.rst"),
+        plot_residuals=report(PLAN.out("qa", "{arc}_wavelength_residuals.png"),
+                              category="Wavelength", caption="captions/wavelength_residuals.rst"),
+        plot_residual_map=report(PLAN.out("qa", "{arc}_wavelength_residual_map.png"),
+                                 category="Wavelength",
+                                 caption="captions/wavelength_residual_map.rst"),
+        plot_dispersion=report(PLAN.out("qa", "{arc}_wavelength_dispersion.png"),
+                               category="Wavelength", caption="captions/wavelength_dispersion.rst"),
     wildcard_constraints:
-        arc=_WS_ARC_PATTERN,
+        arc=PLAN.arc_pattern(),
     params:
-        grating=WAVELENGTH_GRATING,
-        lamps=WAVELENGTH_LAMPS,
-        setup=lambda wc: NIGHT.record(wc.arc).setup,
-        tilt_keyword=_WS_KEYWORDS.get("grating_tilt_deg", "GRTILT"),
-        lamps_keyword=_WS_KEYWORDS.get("lamps", "LAMPS"),
-        filter_keyword=_WS_KEYWORDS.get("filter", "FILTER"),
-        **WAVELENGTH_OPTIONS,
+        setup=lambda wc: PLAN.setup_of(wc.arc),
+        **PLAN.wavelength_params(),
     log:
-        log_path("solve_wavelength", "{arc}"),
+        PLAN.log("solve_wavelength", "{arc}"),
     script:
         RUN_STEP
