@@ -89,6 +89,7 @@ def test_paths_are_below_out_dir(plan):
     assert plan.out("calibrated", "x.fits") == "/out/calibrated/x.fits"
     assert plan.log("solve_wavelength", "arc_b") == "/out/logs/solve_wavelength/arc_b.log"
     assert plan.master_bias_path("2x2") == "/out/calibrations/master_bias_2x2.fits"
+    assert plan.folder_of("/out/manifest.ecsv") == "/out"
 
 
 def test_frame_calibrations_name_the_raw_file_and_its_masters(plan):

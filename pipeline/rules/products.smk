@@ -8,7 +8,7 @@ rule manifest:
     output:
         manifest=PLAN.out("manifest.ecsv"),
     params:
-        out_dir=PLAN.out(),
+        out_dir=lambda wildcards, output: PLAN.folder_of(output.manifest),
     log:
         PLAN.log("manifest", "manifest"),
     script:
@@ -22,7 +22,7 @@ rule night_report:
     output:
         report=PLAN.out("night_report.html"),
     params:
-        out_dir=PLAN.out(),
+        out_dir=lambda wildcards, output: PLAN.folder_of(output.report),
         title=PLAN.report_title(),
         **PLAN.report_params(),
     log:

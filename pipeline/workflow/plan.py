@@ -154,6 +154,12 @@ class NightPlan:
         """A path below ``out_dir``."""
         return str(Path(self.config["out_dir"]).joinpath(*parts))
 
+    @staticmethod
+    def folder_of(path):
+        """The folder of ``path`` (params naming ``out_dir`` derive it from an output, so
+        the rule also runs where the file system is not shared)."""
+        return str(Path(path).parent)
+
     def log(self, rule, name):
         """The log file of one job."""
         return self.out("logs", rule, f"{name}.log")
