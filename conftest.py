@@ -8,10 +8,7 @@ the entry must go).
 
 import pytest
 
-KNOWN_FAILING_DOCTESTS = {
-    "pipeline.extraction.sky.fit_sky":
-        "the Example's rtol=2e-3 is tighter than the fit (0.8 % off); extraction owner",
-}
+KNOWN_FAILING_DOCTESTS = {}
 
 
 def pytest_collection_modifyitems(items):

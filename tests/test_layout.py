@@ -46,7 +46,7 @@ SIZE_EXCEPTIONS = {
 #: imports that break the rule today, each with the move that removes it (owners working on
 #: it now); an entry that no longer occurs is simply unused
 IMPORT_EXCEPTIONS = {
-    ("pipeline.extraction.extract", "pipeline.wavelength.solve"):
+    ("pipeline.extraction.steps", "pipeline.wavelength.solve"):
         "load_wavelength_map moves to pipeline.wavelength.products (ccd+wavelength owner)",
 }
 #: how a module says why it is long: a line of its docstring starting with this
