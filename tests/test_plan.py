@@ -74,8 +74,8 @@ def test_fill_defaults_fills_nested_sections_and_keeps_given_values():
     assert cfg["sky"]["spatial_order"] == schema["sky"]["properties"]["spatial_order"]["default"]
     assert cfg["tracing"]["snr_min"] == 7.0
     assert cfg["tracing"]["order"] == schema["tracing"]["properties"]["order"]["default"]
-    assert cfg["calibration"]["cosmic_rays"]["niter"] == \
-        schema["calibration"]["properties"]["cosmic_rays"]["properties"]["niter"]["default"]
+    assert cfg["calibration"]["cosmic_rays"]["passes"] == \
+        schema["calibration"]["properties"]["cosmic_rays"]["properties"]["passes"]["default"]
 
 
 def test_defaults_are_copies_not_shared_objects():
@@ -102,7 +102,7 @@ def test_arcs_get_no_cosmic_ray_options_targets_do(plan, config, night):
     assert "cosmic_rays" not in plan.calibration_options("arc_b")
     assert plan.calibration_options("sci_b")["cosmic_rays"] == config["calibration"]["cosmic_rays"]
     changed = copy.deepcopy(config)
-    changed["calibration"]["cosmic_rays"]["sigclip"] = 9.0
+    changed["calibration"]["cosmic_rays"]["detection_limit_sigma"] = 9.0
     other = NightPlan(changed, night)
     # a cosmic-ray option changes the science frame's params, never the arc's
     assert other.calibration_options("arc_b") == plan.calibration_options("arc_b")
