@@ -44,8 +44,13 @@ def lamp_species(item):
     ['Ar I']
     >>> lamp_species("QTH")
     []
+    >>> lamp_species("KRYPTON")
+    ['Kr I']
     """
     found = []
+    name = str(item).strip().upper()
+    if name in sv.ELEMENT_SYMBOLS:
+        return [f"{sv.ELEMENT_SYMBOLS[name]} I"]
     for symbol in _ELEMENT.findall(str(item)):
         if symbol in _LINE_LIST_ELEMENTS and f"{symbol} I" not in found:
             found.append(f"{symbol} I")
@@ -162,14 +167,23 @@ def draft_instrument(raw_dir, *, name=None):
     DraftResult
     """
     survey = sv.survey_headers(raw_dir)
-    on_sky = ("ra_deg", "dec_deg", "airmass")     # written on sky frames only, often
-    g = {role: sv.find_keyword(survey, role, min_fraction=0.01 if role in on_sky else 0.3)
-         for role in sv.KEYWORD_NAMES}
-    for role in ("exposure_time_s", "airmass", "grating_tilt_deg", "slit_width_arcsec", "gain",
-                 "read_noise", "saturation", "latitude", "longitude", "height"):
-        g[role] = sv.find_keyword(survey, role, numeric=True,
-                                  min_fraction=0.01 if role in on_sky else 0.3)
     frame_type = sv.find_frame_type_keyword(survey)
+    on_sky = ("ra_deg", "dec_deg", "airmass")     # written on sky frames only, often
+    numeric = {"exposure_time_s", "airmass", "grating_tilt_deg", "slit_width_arcsec", "gain",
+               "read_noise", "saturation", "latitude", "longitude", "height"}
+    taken = {frame_type.value[0]} if frame_type.value else set()
+    g = {}
+    # roles with the most specific values first, so later fallbacks do not take their keywords
+    order = ("date_obs", "data_section", "overscan_section", "binning", "grating_tilt_deg",
+             "ra_deg", "dec_deg",
+             "airmass", "lamps", "gain", "read_noise", "saturation", "latitude", "longitude",
+             "height", "grating", "slit_width_arcsec", "filter",
+             "exposure_time_s", "object")
+    for role in order + tuple(r for r in sv.KEYWORD_NAMES if r not in order):
+        g[role] = sv.find_keyword(survey, role, numeric=True if role in numeric else None,
+                                  min_fraction=0.01 if role in on_sky else 0.3, exclude=taken)
+        if g[role].value:
+            taken.add(g[role].value)
     g["frame_type"] = frame_type
     w = _Writer()
     today = _dt.date.today().isoformat()

@@ -21,6 +21,7 @@ Inferences:
   and long along the slit (:func:`dispersion_axis_from_arc`).
 """
 
+import math
 import re
 import warnings
 from collections import Counter
@@ -35,7 +36,7 @@ from pipeline.night.inventory import find_files
 
 __all__ = ["HeaderSurvey", "Guess", "survey_headers", "classify_type_value",
            "find_frame_type_keyword", "find_keyword", "dispersion_axis_from_arc", "KEYWORD_NAMES",
-           "RAW_PATTERNS"]
+           "RAW_PATTERNS", "ELEMENT_SYMBOLS"]
 
 RAW_PATTERNS = ("*.fits", "*.fit", "*.fts", "*.fits.gz", "*.fit.gz", "*.fits.fz")
 
@@ -246,8 +247,73 @@ def find_frame_type_keyword(survey):
     return Guess((keyword, mapping, unknown), f"{keyword} values: {summary}")
 
 
-def find_keyword(survey, role, *, numeric=None, min_fraction=0.3):
-    """The header keyword playing ``role`` (see :data:`KEYWORD_NAMES`), or None.
+_SEXAGESIMAL = re.compile(r"^\s*[+-]?\d{1,3}(?:[: ]\d{1,2}[: ]\d{1,2}(?:\.\d*)?|[hd]\d{1,2}m)")
+_ISO_TIME = re.compile(r"^\s*\d{4}-\d{2}-\d{2}T\d{2}:\d{2}")
+_SECTION = re.compile(r"^\s*\[\s*\d+\s*:\s*\d+\s*,\s*\d+\s*:\s*\d+\s*\]\s*$")
+ELEMENT_SYMBOLS = _ELEMENT_NAMES = {"MERCURY": "Hg", "ARGON": "Ar", "NEON": "Ne", "HELIUM": "He", "KRYPTON": "Kr",
+                  "XENON": "Xe", "CADMIUM": "Cd"}
+
+
+def _numbers(values, low=-math.inf, high=math.inf):
+    return bool(values) and all(_is_number(v) and low <= v <= high for v in values)
+
+
+def _texts(values, pattern=None):
+    return bool(values) and all(isinstance(v, str) for v in values) and (
+        pattern is None or all(pattern.match(v) for v in values))
+
+
+def _binning_like(values):
+    return _texts(values, re.compile(r"^\s*\d+\s*[ x,*]\s*\d+\s*$|^\s*\d+\s*$"))
+
+
+def _lamp_like(values):
+    words = {w for v in values if isinstance(v, str) for w in re.split(r"[,+;/\s]+", v.upper())}
+    return bool(words & set(_ELEMENT_NAMES)) or any(
+        re.search(r"(Hg|Ar|Ne|He|Kr|Xe|Cd)", str(v)) for v in values)
+
+
+#: when no name of :data:`KEYWORD_NAMES` is present: name fragments and a test on the
+#: night's values (a rule of thumb each; the draft prints the evidence for the user to check)
+_FALLBACKS = {
+    "object": (("OBJ", "TARG", "SRC", "NAME"), lambda v: _texts(v) and len(v) >= 3),
+    "exposure_time_s": (("EXP", "SHUT", "TIME", "ITIME"), lambda v: _numbers(v, 0.0, 1e6)),
+    "date_obs": (("DATE", "OPEN", "START", "OBS", "UT"), lambda v: _texts(v, _ISO_TIME)),
+    "airmass": (("AM", "AIRM", "SECZ"), lambda v: _numbers(v, 1.0, 40.0)),
+    "ra_deg": (("RA",), lambda v: _numbers(v, 0.0, 360.0) or _texts(v, _SEXAGESIMAL)),
+    "dec_deg": (("DEC", "DE"), lambda v: _numbers(v, -90.0, 90.0) or _texts(v, _SEXAGESIMAL)),
+    "grating": (("GRAT", "GRISM", "DISP"), _texts),
+    "grating_tilt_deg": (("TILT", "ANG", "POS", "GRAT"), lambda v: _numbers(v, -80.0, 80.0)),
+    "slit_width_arcsec": (("SLIT",), lambda v: _numbers(v, 0.0, 100.0)),
+    "binning": (("BIN", "SUM"), _binning_like),
+    "filter": (("FILT", "FLT", "BLOCK"), _texts),
+    "lamps": (("LAMP", "CAL", "ARC", "COMP", "SRC"), lambda v: _texts(v) and _lamp_like(v)),
+    "gain": (("GAIN",), lambda v: _numbers(v, 0.0, 1e3)),
+    "read_noise": (("NOISE", "RON", "RDN", "READN"), lambda v: _numbers(v, 0.0, 1e3)),
+    "data_section": (("DATA", "TRIM"), lambda v: _texts(v, _SECTION)),
+    "overscan_section": (("OSCAN", "BIAS", "OVER"), lambda v: _texts(v, _SECTION)),
+    "saturation": (("SAT", "MAXLIN"), lambda v: _numbers(v, 1.0, 1e7)),
+    "latitude": (("LAT",), lambda v: _numbers(v, -90.0, 90.0)),
+    "longitude": (("LON",), lambda v: _numbers(v, -360.0, 360.0)),
+    "height": (("ELEV", "HEIGHT", "ALT"), lambda v: _numbers(v, -500.0, 6000.0)),
+}
+
+
+def _holds(keyword, fragment):
+    """Whether a keyword name holds a fragment; fragments of <= 2 letters ('RA', 'AM')
+    only at its start or end (so GRATPOS does not count as an RA)."""
+    if len(fragment) <= 2:
+        return keyword.startswith(fragment) or keyword.endswith(fragment)
+    return fragment in keyword
+
+
+def find_keyword(survey, role, *, numeric=None, min_fraction=0.3, exclude=()):
+    """The header keyword playing ``role``, or None.
+
+    First the names in common use (:data:`KEYWORD_NAMES`), then any keyword whose
+    name holds one of the role's fragments and whose values pass the role's test
+    (e.g. ISO date-times for ``date_obs``, sexagesimal or 0-360 numbers for
+    ``ra_deg``); the earlier fragment wins, then the keyword in more files.
 
     Parameters
     ----------
@@ -255,20 +321,41 @@ def find_keyword(survey, role, *, numeric=None, min_fraction=0.3):
         True: its values must be numbers; False: text; None: either.
     min_fraction : float
         Fraction of the files that must carry it.
+    exclude : collection of str
+        Keywords already given another role.
     """
-    for name in KEYWORD_NAMES[role]:
+    def shown(name, fraction, how):
+        counts = survey.distinct(name)
+        values = ", ".join(repr(v) for v, _ in counts.most_common(4))
+        more = f" (+{len(counts) - 4} more)" if len(counts) > 4 else ""
+        return Guess(name, f"{name}{how} in {100 * fraction:.0f}% of the files; values "
+                           f"{values}{more}")
+
+    for name in KEYWORD_NAMES.get(role, []):
         fraction = survey.fraction_with(name)
-        if fraction < min_fraction:
+        if fraction < min_fraction or name in exclude:
             continue
         counts = survey.distinct(name)
         if numeric is True and not all(_is_number(v) for v in counts):
             continue
         if numeric is False and not all(isinstance(v, str) for v in counts):
             continue
-        shown = ", ".join(repr(v) for v, _ in counts.most_common(4))
-        more = f" (+{len(counts) - 4} more)" if len(counts) > 4 else ""
-        return Guess(name, f"{name} in {100 * fraction:.0f}% of the files; values {shown}{more}")
-    return Guess(None, f"none of {', '.join(KEYWORD_NAMES[role])} found")
+        return shown(name, fraction, "")
+    fragments, test = _FALLBACKS.get(role, ((), None))
+    candidates = []
+    for keyword in sorted({k for m in survey.merged for k in m} - set(exclude)):
+        rank = next((i for i, f in enumerate(fragments) if _holds(keyword, f)), None)
+        fraction = survey.fraction_with(keyword)
+        if rank is None or fraction < min_fraction:
+            continue
+        if test(list(survey.distinct(keyword))):
+            candidates.append((rank, -fraction, keyword))
+    if candidates:
+        _, fraction, keyword = min(candidates)
+        return shown(keyword, -fraction, f" (name holds '{fragments[min(candidates)[0]]}', "
+                                         "values fit)")
+    return Guess(None, f"none of {', '.join(KEYWORD_NAMES.get(role, []))} found, nor a keyword "
+                       f"whose name holds {'/'.join(fragments)} with fitting values")
 
 
 def _is_number(value):
