@@ -984,7 +984,10 @@ def night_plan(size="small", instrument="rls"):
     # across the slit differ frame by frame (simulator's choice: FWHM 1.0-1.4", beta 2.5-4,
     # offsets ~0.1" rms).
     tm = 0.0
-    nod = 37.5 * (1 if size == "small" else 4)     # binned px: 15" along the slit (0.4"/binned px small)
+    # the nod: 15" along the slit in binned px (0.4"/binned px small, 0.2" full), from TRV-9's
+    # default position (binned y 140 of 256 small, 1120 of 2048 full)
+    nod = 37.5 if size == "small" else 75.0
+    trv9_y = 140.0 if size == "small" else 1120.0
     for r in range(reps):
         add("arc", tm, night, grtilt_deg=8.93, lamps="HgAr,Ne", exptime_s=10.0, flexure_x_px=0.0 + 0.03 * r)
         tm += 3
@@ -1012,7 +1015,7 @@ def night_plan(size="small", instrument="rls"):
             tm += 17
             add("science", tm, night, grtilt_deg=8.93, target="TRV-9", exptime_s=900.0,
                 flexure_x_px=0.39, seeing_fwhm_arcsec=1.02, moffat_beta=2.9,
-                slit_offset_arcsec=0.03, options=(("trace_y_px", 140.0 - nod), ("nod_arcsec", -15.0)))
+                slit_offset_arcsec=0.03, options=(("trace_y_px", trv9_y - nod), ("nod_arcsec", -15.0)))
             tm += 17
             add("science", tm, night, grtilt_deg=8.93, target="TRV-9", exptime_s=None,
                 flexure_x_px=0.35, defect="no_exptime", moffat_beta=3.0,
