@@ -1108,7 +1108,7 @@ def make_frame(inst, spec, *, seed=DEFAULT_SEED, frame_key=0, **overrides):
 def _make_frame(inst, spec, opts, *, seed, frame_key):
     common = dict(seed=seed, frame_key=frame_key, date_obs=spec.date_obs)
     if spec.kind == "bias":
-        return make_bias(inst, grtilt_deg=spec.grtilt_deg, **common, **opts)
+        return make_bias(inst, grtilt_deg=spec.grtilt_deg, filter_name=spec.filter_name, **common, **opts)
     if spec.kind == "flat":
         return make_flat(inst, spec.grtilt_deg, filter_name=spec.filter_name,
                          exptime_s=spec.exptime_s, **common, **opts)

@@ -825,6 +825,7 @@ def test_wren_grating_readings_jitter_across_the_rounding_boundary(wren_dir, wre
         if entry["defect"] == "truncated":
             continue
         hdr = fits.getheader(wren_dir / entry["file"], 0)
+        assert hdr["BLOCKFLT"] in ("CLEAR", "LP570"), fid      # README: the two filter values
         if entry.get("setup"):
             by_setup.setdefault(entry["setup"], []).append(hdr["GRATPOS"])
             assert hdr["GRATPOS"] == entry["tilt_reading_deg"]
