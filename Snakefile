@@ -11,13 +11,15 @@ min_version("8.0")
 configfile: f"{workflow.basedir}/config/config.yaml"
 
 
-from pipeline.workflow.config_check import validated_config
+from pipeline.workflow.layers import layered_config
 from pipeline.workflow.plan import NightPlan, ensure_demo_night
 
-# Every problem on its own line, naming the key; then the schema defaults are filled in.
-validated_config(config, f"{workflow.basedir}/config/schema.yaml")
-ensure_demo_night(config["raw_dir"], workflow.basedir, enabled=config["make_demo_night_if_missing"])
-PLAN = NightPlan.from_config(config)
+# schema defaults < the instrument file the night names < the night (config/config.yaml,
+# --configfile, --config); every problem on its own line, naming the file and the key.
+SETTINGS = layered_config(config, f"{workflow.basedir}/config/schema.yaml", root=workflow.basedir)
+ensure_demo_night(SETTINGS["raw_dir"], workflow.basedir,
+                  enabled=SETTINGS["make_demo_night_if_missing"])
+PLAN = NightPlan.from_config(SETTINGS)
 # Snakemake hides warnings raised while it parses; say the rejections here (also in night_log.ecsv).
 for _problem in PLAN.night.problems():
     print(f"night inventory: {_problem}", file=sys.stderr)

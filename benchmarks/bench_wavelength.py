@@ -38,11 +38,12 @@ def main(argv=None):
     from pipeline.wavelength import grating as gr
     from pipeline.wavelength.solve import solve_wavelength
     from pipeline.wavelength.steps import solve_wavelength_file
+    from pipeline.workflow.layers import load_night_config
     from pipeline.wavelength.arclines import extract_band, find_arc_lines
     from pipeline.wavelength.linelists import read_line_list, species_for_lamps
 
     repo = Path(__file__).resolve().parents[1]
-    config = yaml.safe_load((repo / "config" / "config.yaml").read_text())
+    config = load_night_config(repo / "config" / "config.yaml", root=repo)
     instrument = config["instrument"]
     lines_cfg = config.get("arc_lines", {})
     sol_cfg = dict(config.get("wavelength_solution", {}))

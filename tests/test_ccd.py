@@ -38,12 +38,13 @@ from pipeline.core.frames import read_frame
 from pipeline.core import headers as hdr
 from pipeline.core.headers import parse_section
 from pipeline.core.maskbits import MaskBit
+from pipeline.workflow.layers import load_night_config
 
 import demo_data.simulate as sim
 from demo_data.detector import canonical_to_raw  # noqa: E402  (simulator layout helper)
 
 REPO = Path(__file__).resolve().parents[1]
-CONFIG = yaml.safe_load((REPO / "config" / "config.yaml").read_text())
+CONFIG = load_night_config()  # the demo night: config/config.yaml over config/instruments/rls.yaml
 # The tests below compare the flat with the simulator's pixel response, so they build it
 # without the slit illumination whatever the demo config chooses (tested separately).
 PIXEL_RESPONSE_FLAT = dict(CONFIG["flat"], keep_slit_illumination=False)

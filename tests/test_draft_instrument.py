@@ -4,7 +4,7 @@ Two nights: one written here in another instrument's layout (the truth is what t
 test writes: pixels in an extension, other keyword names, sexagesimal coordinates,
 dispersion along FITS axis 1, a west-positive longitude, airmass at the start of the
 exposure computed here with astropy), and frames of the demo simulator (truth:
-demo_data/README.md and config/config.yaml, the demo's instrument description).
+demo_data/README.md and config/instruments/rls.yaml, the demo's instrument description).
 """
 
 import copy
@@ -161,7 +161,7 @@ def fill_todos(inst):
 
 def test_filled_draft_validates_and_inventories_the_night(other):
     folder, result = other
-    unfilled = yaml.safe_load((REPO / "config" / "config.yaml").read_text())
+    unfilled = yaml.safe_load((REPO / "config" / "config.yaml").read_text())  # the night's keys
     unfilled["instrument"] = result.instrument
     problems = config_problems(unfilled, SCHEMA)
     # every null left in a required key is named by its dotted key
@@ -187,7 +187,7 @@ def test_draft_of_the_demo_instrument_matches_its_description(tmp_path):
                    write_truth_files=False)
     result = draft.draft_instrument(raw)
     inst = result.instrument
-    truth = yaml.safe_load((REPO / "config" / "config.yaml").read_text())["instrument"]
+    truth = yaml.safe_load((REPO / "config" / "instruments" / "rls.yaml").read_text())["instrument"]
     for key in ("name", "pixel_extension", "frame_type_keyword", "setup_keywords",
                 "readout_keywords", "sections", "gain_e_per_adu", "read_noise_e",
                 "dispersion_axis", "saturation_adu"):

@@ -688,7 +688,7 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
     from demo_data import sources as src
     import yaml
 
-    cfg = yaml.safe_load(open(Path(__file__).parents[1] / "config" / "config.yaml"))
+    cfg = yaml.safe_load(open(Path(__file__).parents[1] / "config" / "instruments" / "rls.yaml"))
     regions = (cfg["flux_calibration"]["exclude_regions_angstrom"]
                + cfg["flux_calibration"]["telluric_bands_angstrom"])
     root = Path(__file__).parents[1] / "demo_data"

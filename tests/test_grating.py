@@ -25,7 +25,7 @@ from pipeline.core.errors import ConfigError, OrderOverlapWarning
 
 REPO = Path(__file__).resolve().parents[1]
 
-# Nominal RLS optics from config/config.yaml (the demo instrument, invented).
+# Nominal RLS optics from config/instruments/rls.yaml (the demo instrument, invented).
 RLS = dict(groove_density_per_mm=600, order=1, camera_collimator_angle_deg=30.0,
            camera_focal_length_mm=250.0, pixel_size_um=15.0, collimated_beam_mm=60.0,
            blaze_wavelength_angstrom=5500.0,
@@ -285,6 +285,6 @@ def test_command_line_prints_the_setup(tmp_path, capsys):
 
 def test_command_line_on_the_project_config(capsys):
     # the shipped config must be enough for the observer's check
-    assert gr.main(["--config", str(REPO / "config" / "config.yaml"), "--tilt", "8.93",
+    assert gr.main(["--config", str(REPO / "config" / "instruments" / "rls.yaml"), "--tilt", "8.93",
                     "--binning", "2"]) == 0
     assert "coverage" in capsys.readouterr().out

@@ -26,7 +26,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 @pytest.fixture(scope="module")
 def instrument():
-    with open(REPO / "config" / "config.yaml") as f:
+    with open(REPO / "config" / "instruments" / "rls.yaml") as f:
         return yaml.safe_load(f)["instrument"]
 
 
@@ -90,7 +90,7 @@ def inventory_quiet(folder, instrument):
 def test_good_night_classification(tmp_path, instrument):
     inv, warns = inventory_quiet(good_night(tmp_path), instrument)
     types = {r.frame_id: (r.frame_type, r.status) for r in inv.records}
-    # truth: the IMAGETYP values written above and config/config.yaml frame_types
+    # truth: the IMAGETYP values written above and config/instruments/rls.yaml frame_types
     assert types == {"b1": ("bias", "ok"), "b2": ("bias", "ok"), "f1": ("flat", "ok"),
                      "a_early": ("arc", "ok"), "a_late": ("arc", "ok"),
                      "std1": ("standard", "ok"), "sci1": ("science", "ok"),

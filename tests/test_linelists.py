@@ -15,7 +15,7 @@ from pipeline.wavelength.linelists import (DEFAULT_LINE_LIST, parse_lamps, read_
                                 species_for_lamps)
 
 REPO = Path(__file__).resolve().parents[1]
-LAMPS = {"HgAr": ["Hg I", "Ar I"], "Ne": ["Ne I"], "He": ["He I"], "Ar": ["Ar I"]}  # config/config.yaml
+LAMPS = {"HgAr": ["Hg I", "Ar I"], "Ne": ["Ne I"], "He": ["He I"], "Ar": ["Ar I"]}  # config/instruments/rls.yaml
 
 
 def _reference(name):

@@ -14,7 +14,8 @@ import yaml
 
 from pipeline.core.errors import InputFileError
 from pipeline.night.inventory import FrameRecord, NightInventory
-from pipeline.workflow.config_check import fill_defaults, validated_config
+from pipeline.workflow.config_check import fill_defaults
+from pipeline.workflow.layers import load_night_config
 from pipeline.workflow.plan import (NO_MATCH, SHIPPED_DATA, NightPlan, demo_night_needed,
                                     key_order_free)
 
@@ -53,9 +54,10 @@ def night():
 
 @pytest.fixture
 def config():
-    cfg = yaml.safe_load((REPO_ROOT / "config" / "config.yaml").read_text())
+    """The demo night's config (config/config.yaml over config/instruments/rls.yaml)."""
+    cfg = load_night_config()
     cfg["out_dir"] = "/out"
-    return validated_config(cfg, SCHEMA)
+    return cfg
 
 
 @pytest.fixture
@@ -65,8 +67,8 @@ def plan(config, night):
 
 
 def test_fill_defaults_fills_nested_sections_and_keeps_given_values():
-    cfg = yaml.safe_load((REPO_ROOT / "config" / "config.yaml").read_text())
-    del cfg["sky"]
+    cfg = yaml.safe_load((REPO_ROOT / "config" / "instruments" / "rls.yaml").read_text())
+    cfg.update(raw_dir="raw", out_dir="out", instrument_file="rls.yaml")
     cfg["tracing"] = {"snr_min": 7.0}
     fill_defaults(cfg, SCHEMA)
     schema = yaml.safe_load(SCHEMA.read_text())["properties"]

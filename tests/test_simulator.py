@@ -127,7 +127,7 @@ def test_true_optics_differ_from_nominal_as_specified(inst):
     for grtilt in (8.93, 11.83):
         optics = inst.optics(grtilt)
         assert 0.1 <= abs(optics.tilt_deg - grtilt) <= 0.3
-    err = abs(inst.focal_length_mm / 250.0 - 1)  # nominal 250 mm: config/config.yaml
+    err = abs(inst.focal_length_mm / 250.0 - 1)  # nominal 250 mm: config/instruments/rls.yaml
     assert 0.005 <= err <= 0.01
 
 

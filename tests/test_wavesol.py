@@ -38,7 +38,7 @@ from pipeline.wavelength.linelists import LineList, read_line_list, species_for_
 
 import demo_data.simulate as sim
 
-# config/config.yaml instrument.grating and instrument.lamps (the observer's nominal values)
+# config/instruments/rls.yaml instrument.grating and instrument.lamps (the observer's nominal values)
 GRATING = {"groove_density_per_mm": 600, "order": 1, "camera_collimator_angle_deg": 30.0,
            "camera_focal_length_mm": 250.0, "pixel_size_um": 15.0, "collimated_beam_mm": 60.0,
            "blaze_wavelength_angstrom": 5500.0, "detector_center_px": None,

@@ -149,7 +149,9 @@ def test_changing_one_option_reruns_only_what_it_affects(reduced_night, tmp_path
                                                          reruns, untouched):
     import yaml
 
-    config = yaml.safe_load((REPO_ROOT / "config" / "config.yaml").read_text())
+    from pipeline.workflow.layers import load_night_config
+
+    config = load_night_config()  # what the run above used: config/config.yaml over rls.yaml
     changed = {section: dict(config[section], **yaml.safe_load(option))}
     override = tmp_path / "override.yaml"
     override.write_text(yaml.safe_dump(changed))

@@ -681,7 +681,7 @@ def main(argv=None):
 
     Examples
     --------
-    ``longslit-grating --config config/config.yaml --tilt 11.83 --binning 2 --filter GG495``
+    ``longslit-grating --config config/instruments/rls.yaml --tilt 11.83 --binning 2 --filter GG495``
     """
     import yaml
 
@@ -689,8 +689,9 @@ def main(argv=None):
         prog="longslit-grating",
         description="Check a grating setup before the night: coverage, dispersion, anamorphic "
                     "factor, resolving power and order overlap from the nominal optics in a config.")
-    parser.add_argument("--config", default="config/config.yaml",
-                        help="config file with an instrument: section (default %(default)s)")
+    parser.add_argument("--config", default="config/instruments/rls.yaml",
+                        help="instrument file (or config) with an instrument: section "
+                             "(default %(default)s)")
     parser.add_argument("--tilt", type=float, required=True, help="grating tilt in degrees")
     parser.add_argument("--binning", type=int, default=1, help="binning along the dispersion")
     parser.add_argument("--filter", default="NONE", help="FILTER value (order-blocking filter)")
