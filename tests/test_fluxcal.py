@@ -686,9 +686,10 @@ def test_simulated_night_sensitivity_and_targets_recovered(tilt, filt):
     bands, seeing slit losses, line-spread function and the observer's shipped tables."""
     import demo_data.simulate as sim
     from demo_data import sources as src
-    import yaml
 
-    cfg = yaml.safe_load(open(Path(__file__).parents[1] / "config" / "instruments" / "rls.yaml"))
+    from pipeline.workflow.layers import load_night_config
+
+    cfg = load_night_config()  # the demo night's config (instrument file + schema defaults)
     regions = (cfg["flux_calibration"]["exclude_regions_angstrom"]
                + cfg["flux_calibration"]["telluric_bands_angstrom"])
     root = Path(__file__).parents[1] / "demo_data"
