@@ -239,3 +239,92 @@ def test_command_line(tmp_path, other, capsys):
     empty.mkdir()
     assert draft.main([str(empty), "-o", str(tmp_path / "x.yaml")]) == 2
     assert "no files matching" in capsys.readouterr().err
+
+
+# -- the second invented instrument (WREN, demo_data/wren.py) ----------------------------
+WREN_FILE = REPO / "config" / "instruments" / "wren.yaml"
+
+
+@pytest.fixture(scope="module")
+def wren_night(tmp_path_factory):
+    """The small WREN night simulated by demo_data (its truth in raw/truth/index.json)."""
+    import json
+    import subprocess
+    import sys
+
+    raw = tmp_path_factory.mktemp("wren") / "raw"
+    subprocess.run([sys.executable, "-m", "demo_data.simulate", "--instrument", "wren", "--out",
+                    str(raw), "--quiet"], check=True, cwd=REPO, capture_output=True)
+    return raw, json.loads((raw / "truth" / "index.json").read_text())
+
+
+def test_draft_of_the_second_instrument_matches_its_instrument_file(wren_night):
+    # config/instruments/wren.yaml = this draft + the optics etc. filled by hand from the
+    # instrument's description: every value the draft inferred must be in the file unchanged
+    raw, truth = wren_night
+    inst = draft.draft_instrument(raw).instrument
+    filed = yaml.safe_load(WREN_FILE.read_text())["instrument"]
+    for key in ("name", "pixel_extension", "frame_type_keyword", "keywords", "setup_keywords",
+                "readout_keywords", "setup_tolerances", "sections", "gain_e_per_adu",
+                "read_noise_e", "saturation_adu", "dispersion_axis", "lamps"):
+        assert inst[key] == filed[key], key
+    for kind in ("bias", "flat", "arc", "standard", "science"):
+        assert inst["frame_types"][kind] == filed["frame_types"][kind], kind
+    for key in ("latitude_deg", "longitude_deg", "height_m"):
+        assert inst["site"][key] == filed["site"][key] == truth["site"][key], key
+    # truth: the simulator's own description of the conventions
+    conv = truth["conventions"]
+    assert inst["pixel_extension"] == conv["pixel_extension"]
+    assert inst["dispersion_axis"] == conv["dispersion_axis_fits"]
+    assert filed["wavelength_increases_with_pixel"] == conv["wavelength_increases_with_pixel"]
+    wanted = {"object": "object", "exposure_time_s": "exposure_time_s", "date_obs": "date_obs",
+              "airmass": "airmass", "ra_deg": "ra", "dec_deg": "dec", "grating": "grating",
+              "grating_tilt_deg": "grating_tilt_deg", "slit_width_arcsec": "slit_width_arcsec",
+              "binning": "binning", "filter": "filter", "lamps": "lamps"}
+    assert inst["keywords"] == {ours: conv["keywords"][theirs] for ours, theirs in wanted.items()}
+    assert inst["frame_types"]["bias"] == [conv["frame_types"]["BIAS"]]
+    assert inst["frame_types"]["standard"] == [conv["frame_types"]["STANDARD"]]
+
+
+@pytest.mark.slow
+def test_whole_workflow_on_the_second_instrument(wren_night, tmp_path):
+    import hashlib
+    import subprocess
+    import sys
+
+    from astropy.table import Table
+
+    raw, truth = wren_night
+    before = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in raw.glob("*.fits")}
+    out = tmp_path / "out"
+    run = subprocess.run([sys.executable, "-m", "snakemake", "--cores", "2", "--configfile",
+                          str(WREN_FILE), "--config", f"raw_dir={raw}", f"out_dir={out}"],
+                         cwd=REPO, capture_output=True, text=True)
+    assert run.returncode == 0, run.stderr[-6000:]
+    after = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in raw.glob("*.fits")}
+    assert before == after                                   # raw data never modified
+    log = Table.read(out / "night_log.ecsv", format="ascii.ecsv")
+    rows = {str(r["frame_id"]): r for r in log}
+    frames = truth["frames"]
+    # every frame has the status the simulator expects; the hostile ones say why
+    for fid, entry in frames.items():
+        assert rows[fid]["status"] == entry["expected_pipeline_status"], fid
+    reasons = {fid: str(rows[fid]["reason"]) for fid, e in frames.items() if e.get("defect")}
+    assert any("truncated" in r for r in reasons.values())
+    assert sum(r.startswith("not data: ") for r in reasons.values()) == 3
+    # one pipeline setup per simulated setup, whatever the encoder jitter
+    by_truth = {}
+    for fid, entry in frames.items():
+        if entry["kind"] != "bias" and rows[fid]["status"] == "ok":
+            by_truth.setdefault(entry["setup"], set()).add(str(rows[fid]["setup"]))
+    assert len(by_truth) == 2 and all(len(s) == 1 for s in by_truth.values())
+    # the airmass used is the exposure mean, not the header's start-of-exposure value
+    for fid, entry in frames.items():
+        if entry["kind"] in ("standard", "science") and rows[fid]["status"] == "ok":
+            assert rows[fid]["airmass_source"] == "computed"
+            assert rows[fid]["airmass_used"] == pytest.approx(entry["airmass_exposure_mean"],
+                                                               abs=0.003), fid
+            assert rows[fid]["airmass"] == pytest.approx(entry["airmass_start"], abs=1e-3)
+    manifest = Table.read(out / "manifest.ecsv", format="ascii.ecsv")
+    assert "missing" not in set(str(s) for s in manifest["status"])
+    assert (out / "night_report.html").exists()
