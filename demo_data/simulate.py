@@ -29,12 +29,11 @@ from pathlib import Path
 
 import numpy as np
 from astropy.io import fits
-from scipy.special import erf, ndtr
+from scipy.special import ndtr
 
 from . import sources as src
 from .detector import Detector, raw_to_canonical
-from .observing import (air_to_vac, offline_earth_orientation, slit_row_weights, vac_to_air,
-                        velocity_corrections)
+from .observing import air_to_vac, offline_earth_orientation, slit_row_weights, velocity_corrections
 from .optics import GratingOptics
 from .render import Grid, gaussian_row_weights, render_continuum, render_lines, wavelength_edges
 
@@ -590,13 +589,6 @@ def _photons_per_angstrom(f_lambda, lam, area_cm2=src.TELESCOPE_AREA_CM2):
     The photon energy is h c / lambda_vacuum (Ciddor 1996 conversion).
     """
     return f_lambda * area_cm2 * air_to_vac(lam) / src.HC_ERG_ANGSTROM
-
-
-def _slit_fraction(sigma_arcsec, width_arcsec, offset_arcsec):
-    """Fraction of a Gaussian star image passing a slit of full width, centred at ``offset``."""
-    s = np.sqrt(2.0) * np.asarray(sigma_arcsec, float)
-    return 0.5 * (erf((0.5 * width_arcsec - offset_arcsec) / s)
-                  + erf((0.5 * width_arcsec + offset_arcsec) / s))
 
 
 #: binned columns between two exact evaluations of a star's slit weights (linear in between)

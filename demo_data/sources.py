@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 from scipy.special import erf
 
-from .observing import C_KM_S, air_to_vac, vac_to_air
+from .observing import C_KM_S, air_to_vac, doppler_air_wavelength, vac_to_air
 
 __all__ = [
     "HC_ERG_ANGSTROM", "TELESCOPE_AREA_CM2", "DATA_DIR", "read_arc_lines", "read_sky_lines",
@@ -382,7 +382,7 @@ class Target:
     def line_air_wavelengths(self, v_corr_km_s=0.0):
         """Air wavelengths at the telescope of the emission lines (rest vacuum x (1+z), Doppler)."""
         rest = np.array([ln.rest_wavelength_vacuum_angstrom for ln in self.lines], float)
-        return vac_to_air(rest * (1.0 + self.redshift) / (1.0 + v_corr_km_s / C_KM_S))
+        return doppler_air_wavelength(rest, self.redshift, v_corr_km_s)
 
 
 TARGETS = {
