@@ -159,3 +159,11 @@ def test_a_missing_instrument_file_is_named(tmp_path):
     night.pop("instrument_file")
     with pytest.raises(ConfigError, match="instrument_file: missing"):
         layered_config(night, SCHEMA)
+
+
+@pytest.mark.parametrize("path", sorted((REPO_ROOT / "config" / "instruments").glob("*.yaml")),
+                         ids=lambda p: p.name)
+def test_every_shipped_instrument_file_is_valid_and_layers(path):
+    content = load_instrument_file(path, SCHEMA)
+    merged = layered_config(dict(_night(), instrument_file=str(path)), SCHEMA)
+    assert merged["instrument"]["name"] == content["instrument"]["name"]

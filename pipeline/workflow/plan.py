@@ -44,8 +44,8 @@ _CCD_INSTRUMENT_KEYS = ("pixel_extension", "sections", "gain_e_per_adu", "read_n
 _GRATING_KEYS = ("groove_density_per_mm", "order", "camera_collimator_angle_deg",
                  "camera_focal_length_mm", "pixel_size_um", "detector_center_px",
                  "order_blocking_filters")
-# the flux_calibration keys fit_sensitivity reads, as (param name, config key)
-_SENSITIVITY_KEYS = (("fit_kind", "fit_kind"), ("knot_spacing_angstrom", "knot_spacing_angstrom"),
+#: the flux_calibration keys fit_sensitivity reads, as (param name, config key)
+SENSITIVITY_PARAM_KEYS = (("fit_kind", "fit_kind"), ("knot_spacing_angstrom", "knot_spacing_angstrom"),
                      ("degree", "degree"), ("clip_sigma", "clip_sigma"),
                      ("max_iterations", "max_iterations"), ("error_floor_mag", "error_floor_mag"),
                      ("max_extrapolation_angstrom", "max_extrapolation_angstrom"),
@@ -364,7 +364,7 @@ class NightPlan:
         """Static params of ``fit_sensitivity``: the fit options, the slit-loss model and
         the site."""
         fluxcal = self.config["flux_calibration"]
-        params = {name: fluxcal[key] for name, key in _SENSITIVITY_KEYS}
+        params = {name: fluxcal[key] for name, key in SENSITIVITY_PARAM_KEYS}
         params["spatial_scale_arcsec_per_px"] = self.instrument["spatial_scale_arcsec_per_px"]
         params["site"] = self.site()
         return params
