@@ -13,7 +13,8 @@ import yaml
 
 from pipeline.core.errors import ConfigError
 from pipeline.workflow.config_check import check_config, config_problems, fill_defaults
-from pipeline.workflow.layers import layered_config, load_instrument_file, merge_layers
+from pipeline.workflow.layers import (layered_config, load_instrument_file, load_night_config,
+                                      merge_layers)
 
 from conftest import REPO_ROOT
 
@@ -167,3 +168,12 @@ def test_every_shipped_instrument_file_is_valid_and_layers(path):
     content = load_instrument_file(path, SCHEMA)
     merged = layered_config(dict(_night(), instrument_file=str(path)), SCHEMA)
     assert merged["instrument"]["name"] == content["instrument"]["name"]
+
+
+def test_shipped_instrument_files_are_found_from_any_folder(tmp_path, monkeypatch):
+    # Snakemake may run elsewhere than the repository (-s path/Snakefile): a relative
+    # instrument_file not found from there is looked for in the repository
+    monkeypatch.chdir(tmp_path)
+    assert load_night_config()["instrument"]["name"] == "RLS"
+    with pytest.raises(ConfigError, match="no such file"):
+        layered_config(dict(_night(), instrument_file="config/instruments/rls.yaml"), SCHEMA)
