@@ -297,8 +297,8 @@ def test_whole_workflow_on_the_second_instrument(wren_night, tmp_path):
     raw, truth = wren_night
     before = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in raw.glob("*.fits")}
     out = tmp_path / "out"
-    run = subprocess.run([sys.executable, "-m", "snakemake", "--cores", "2", "--configfile",
-                          str(WREN_FILE), "--config", f"raw_dir={raw}", f"out_dir={out}"],
+    run = subprocess.run([sys.executable, "-m", "snakemake", "--cores", "2", "--config",
+                          f"instrument_file={WREN_FILE}", f"raw_dir={raw}", f"out_dir={out}"],
                          cwd=REPO, capture_output=True, text=True)
     assert run.returncode == 0, run.stderr[-6000:]
     after = {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in raw.glob("*.fits")}
