@@ -6,8 +6,9 @@
 #   bash benchmarks/local_slurm/run_demo_on_slurm.sh [options] [VENV]
 #   bash benchmarks/local_slurm/stop_cluster.sh
 #
-# VENV (default /work/venv) is the virtualenv with the pipeline and snakemake;
-# snakemake-executor-plugin-slurm is pip-installed into it when absent.
+# VENV (default: .venv in the repository) is the virtualenv with the pipeline and
+# snakemake, absolute or relative to the current folder; the SLURM executor plugin
+# (pip extra `cluster`) is pip-installed into it when absent.
 # Options:
 #   --size small|full   demo night to simulate (default small; full = 4096x2048, ~80 frames)
 #   --raw DIR           reduce the raw frames in DIR instead of simulating a night
@@ -28,7 +29,7 @@
 set -euo pipefail
 
 REPO=${PIPELINE_REPO:-$(cd "$(dirname "${BASH_SOURCE[0]}")/../.." && pwd)}
-VENV=/work/venv
+VENV=$REPO/.venv
 SIZE=small
 RAW_IN=""
 LOCAL=1
@@ -50,10 +51,14 @@ while [ $# -gt 0 ]; do
         *) VENV=$1; shift ;;
     esac
 done
-PY=$VENV/bin/python
-SMK=$VENV/bin/snakemake
 say() { echo "[run_demo_on_slurm] $*"; }
 die() { echo "[run_demo_on_slurm] ERROR: $*" >&2; exit 1; }
+# The script changes directory below: make the venv path absolute first, so that a
+# relative one (the README's `.venv`) means the folder relative to where it was started.
+[ -d "$VENV" ] || die "no venv folder $VENV (give the virtualenv with the pipeline and snakemake)"
+VENV=$(cd "$VENV" && pwd)
+PY=$VENV/bin/python
+SMK=$VENV/bin/snakemake
 
 [ -x "$PY" ] || die "no python in venv $VENV"
 [ -x "$SMK" ] || die "no snakemake in venv $VENV"
