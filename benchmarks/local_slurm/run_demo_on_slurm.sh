@@ -15,9 +15,11 @@
 #   --no-local          skip the local comparison run
 #   --local-cores N     cores of the local run (default 2)
 #   --keep              keep the work folder (default: removed when all went well)
+#   --plan              only print the SLURM jobs the night would be (Snakemake dry run
+#                       with the SLURM profile; needs no cluster) and stop
 #   --worktree          run the working tree as it is (default: a clone of its committed
 #                       HEAD in the work folder, so that edits made while the jobs run
-#                       cannot reach them; PYTHONPATH points the jobs at the clone)
+#                       cannot reach them); PYTHONPATH points the jobs at the copy run
 #   -- ARGS...          extra arguments for the SLURM snakemake call
 # Environment: WORK_DIR parent of the work folder (default ${TMPDIR:-/tmp}; on a
 # real cluster it must be on a file system the compute nodes share);
@@ -36,6 +38,7 @@ LOCAL=1
 LOCAL_CORES=2
 KEEP=0
 WORKTREE=0
+PLAN=0
 EXTRA=()
 while [ $# -gt 0 ]; do
     case "$1" in
@@ -46,7 +49,8 @@ while [ $# -gt 0 ]; do
         --keep) KEEP=1; shift ;;
         --worktree) WORKTREE=1; shift ;;
         --) shift; EXTRA=("$@"); break ;;
-        -h|--help) sed -n '2,28p' "${BASH_SOURCE[0]}"; exit 0 ;;
+        --plan) PLAN=1; shift ;;
+        -h|--help) sed -n '2,30p' "${BASH_SOURCE[0]}"; exit 0 ;;
         -*) echo "unknown option $1 (see --help)" >&2; exit 2 ;;
         *) VENV=$1; shift ;;
     esac
@@ -62,15 +66,15 @@ SMK=$VENV/bin/snakemake
 
 [ -x "$PY" ] || die "no python in venv $VENV"
 [ -x "$SMK" ] || die "no snakemake in venv $VENV"
-command -v sbatch >/dev/null && sinfo -h -o '%t' 2>/dev/null | grep -Eq '^(idle|mix|alloc)' \
+[ "$PLAN" -eq 1 ] || { command -v sbatch >/dev/null && sinfo -h -o '%t' 2>/dev/null | grep -Eq '^(idle|mix|alloc)'; } \
     || die "no SLURM node is up: run benchmarks/local_slurm/start_cluster.sh first (as root)"
 
 if ! "$PY" -c 'import snakemake_executor_plugin_slurm' 2>/dev/null; then
     say "installing snakemake-executor-plugin-slurm into $VENV"
-    "$PY" -m pip install -q snakemake-executor-plugin-slurm
+    "$PY" -m pip install -q "snakemake-executor-plugin-slurm>=2.8"  # as the extra `cluster`
 fi
 say "load average $(cut -d' ' -f1-3 /proc/loadavg) on $(nproc) cores"
-say "snakemake $("$SMK" --version), slurm plugin $("$PY" -c 'import importlib.metadata as m; print(m.version("snakemake-executor-plugin-slurm"))'), $(sinfo -V)"
+say "snakemake $("$SMK" --version), slurm plugin $("$PY" -c 'import importlib.metadata as m; print(m.version("snakemake-executor-plugin-slurm"))'), $(sinfo -V 2>/dev/null || echo 'no SLURM commands')"
 
 WORK=$(mktemp -d "${WORK_DIR:-${TMPDIR:-/tmp}}/slurm_demo.XXXXXX")
 RAW=$WORK/raw
@@ -81,9 +85,10 @@ if [ "$WORKTREE" -eq 1 ]; then
 else
     RUN_DIR=$WORK/repo
     git clone -q "$REPO" "$RUN_DIR"
-    export PYTHONPATH="$RUN_DIR${PYTHONPATH:+:$PYTHONPATH}"
     say "running a clone of $REPO at $(git -C "$RUN_DIR" log -1 --format='%h %s' | cut -c1-70)"
 fi
+# the jobs import this copy of the pipeline, whichever checkout the venv was installed from
+export PYTHONPATH="$RUN_DIR${PYTHONPATH:+:$PYTHONPATH}"
 cd "$RUN_DIR"
 if [ -n "$RAW_IN" ]; then
     RAW=$RAW_IN
@@ -95,6 +100,45 @@ fi
 
 now() { date +%s.%N; }
 status=0
+
+# --- the plan only ---------------------------------------------------------
+if [ "$PLAN" -eq 1 ]; then
+    set +e
+    "$SMK" -n --profile profiles/slurm --slurm-no-account --slurm-status-command squeue \
+        "${EXTRA[@]}" --config raw_dir="$RAW" out_dir="$WORK/out_slurm" >"$WORK/plan.log" 2>&1
+    rc_plan=$?
+    set -e
+    if [ "$rc_plan" -ne 0 ]; then
+        tail -n 30 "$WORK/plan.log"; die "the dry run exited $rc_plan (log: $WORK/plan.log)"
+    fi
+    "$PY" - "$WORK/plan.log" Snakefile <<'EOF'
+import re, sys
+from collections import Counter
+log, snakefile = (open(p).read() for p in sys.argv[1:3])
+# The dry run lists every job: `rule NAME:` at the left margin, or a `Group job ID` header
+# followed by its indented `rule NAME:` lines. The Snakefile's `localrules:` run in the main
+# process, not as SLURM jobs.
+block = re.search(r"^localrules:\s*\n((?:[ \t]+\w+,?[ \t]*\n)+)", snakefile, flags=re.M)
+local = set(re.findall(r"\w+", block.group(1))) if block else set()
+single, local_jobs, groups, current = Counter(), Counter(), {}, None
+for line in log.splitlines():
+    if m := re.match(r"^\[[^]]+\] Group job (\S+)", line):
+        current = groups.setdefault(m.group(1), [])
+    elif m := re.match(r"^rule (\w+):", line):
+        current = None
+        (local_jobs if m.group(1) in local else single)[m.group(1)] += 1
+    elif current is not None and (m := re.match(r"^    rule (\w+):", line)):
+        current.append(m.group(1))
+by_rules = Counter("group " + "+".join(rules) for rules in groups.values())
+print("\n=== SLURM jobs of the night (dry run) ===")
+for name, n in sorted(single.items()) + sorted(by_rules.items()):
+    print(f"  {n:4d}  {name}")
+print(f"SLURM jobs planned: {sum(single.values()) + len(groups):8d}")
+print(f"run in the main process (localrules): {', '.join(sorted(local_jobs))}")
+EOF
+    if [ "$KEEP" -eq 1 ]; then say "work folder kept: $WORK"; else rm -rf "$WORK"; fi
+    exit 0
+fi
 
 # --- the cluster run -------------------------------------------------------
 # --slurm-no-account and --slurm-status-command squeue: this test cluster has no
@@ -190,8 +234,20 @@ def manifest(name):
 log = (work / "slurm_run.log").read_text()
 submitted = re.findall(
     r"Job \S+ has been submitted with SLURM jobid (\d+) \(log: .*?slurm_logs/(rule|group)_([^/]+)/", log)
-per_rule = Counter(name if kind == "rule" else f"group {name}" for _, kind, name in submitted)
+rule_names = set(re.findall(r"^\s*(?:local)?rule (\w+):", log, flags=re.M))
 local_rules = sorted(set(re.findall(r"^\s*localrule (\w+):", log, flags=re.M)))
+
+
+def label(kind, name):
+    """rule name, or `group` + the rules of a group job (its log folder is
+    group_<group id>_<rule>_<rule>...; the group id names the frame or setup)."""
+    if kind == "rule":
+        return name
+    rules = sorted((name.rfind(f"_{r}"), r) for r in rule_names if f"_{r}" in name)
+    return "group " + "+".join(r for _, r in rules)
+
+
+per_rule = Counter(label(kind, name) for _, kind, name in submitted)
 slurm_ids = {s for s, _, _ in submitted}
 
 # What SLURM itself recorded (jobcomp/filetxt of start_cluster.sh): state and run time
@@ -244,7 +300,7 @@ peak_file = work / "job_peak_rss.json"
 if peak_file.exists():
     import json
     peak_kb = json.loads(peak_file.read_text())
-    rule_of = {s: (name if kind == "rule" else f"group {name}") for s, kind, name in submitted}
+    rule_of = {s: label(kind, name) for s, kind, name in submitted}
     by_rule = {}
     for job, kb in peak_kb.items():
         if job in rule_of:

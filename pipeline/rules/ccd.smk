@@ -54,6 +54,11 @@ rule calibrate_frame:
         keywords=PLAN.keywords(),
         overscan=PLAN.section("overscan"),
         calibration=lambda wc: PLAN.calibration_options(wc.frame),
+    # On a cluster, one job per frame: calibrate_frame -> (arcs) find_arc_lines ->
+    # solve_wavelength, (standards, science) extract_spectra -> (science) flux_calibrate.
+    # Why these groups and not others: DEVELOPERS.md, "Cluster jobs".
+    group:
+        "frame_{frame}"
     log:
         PLAN.log("calibrate_frame", "{frame}"),
     script:

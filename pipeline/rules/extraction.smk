@@ -32,6 +32,8 @@ rule extract_spectra:
         sky=PLAN.section("sky"),
         tracing=PLAN.section("tracing"),
         extraction=PLAN.section("extraction"),
+    group:
+        "frame_{frame}"
     log:
         PLAN.log("extract_spectra", "{frame}"),
     script:

@@ -20,6 +20,9 @@ rule fit_sensitivity:
     params:
         setup=lambda wc: wc.setup,
         **PLAN.sensitivity_params(),
+    # one cluster job per setup: the sensitivity and the standards calibrated with it
+    group:
+        "sensitivity_{setup}"
     log:
         PLAN.log("fit_sensitivity", "{setup}"),
     script:
@@ -43,6 +46,11 @@ rule flux_calibrate:
         uncalibrated_reason=lambda wc: PLAN.frame_uncalibrated_reason(wc.frame),
         exclude_regions=lambda wc: PLAN.check_exclude_regions(wc.frame),
         **PLAN.flux_calibrate_params(),
+    # a science frame's calibration ends its frame's cluster job; a standard's joins the
+    # sensitivity's job (in its own frame's job it would make a cycle through fit_sensitivity)
+    group:
+        lambda wc: (f"sensitivity_{PLAN.setup_of(wc.frame)}"
+                    if PLAN.frame_type(wc.frame) == "standard" else f"frame_{wc.frame}")
     log:
         PLAN.log("flux_calibrate", "{frame}"),
     script:

@@ -13,6 +13,8 @@ rule find_arc_lines:
         arc=PLAN.arc_pattern(),
     params:
         **PLAN.arc_line_options(),
+    group:
+        "frame_{arc}"
     log:
         PLAN.log("find_arc_lines", "{arc}"),
     script:
@@ -41,6 +43,8 @@ rule solve_wavelength:
     params:
         setup=lambda wc: PLAN.setup_of(wc.arc),
         **PLAN.wavelength_params(),
+    group:
+        "frame_{arc}"
     log:
         PLAN.log("solve_wavelength", "{arc}"),
     script:
