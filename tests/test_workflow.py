@@ -5,34 +5,15 @@ never imports pipeline) makes the night, specutils reads the products back,
 and SHA-256 hashes show the raw files are untouched.
 """
 
-import hashlib
 import re
-import subprocess
-import sys
-import time
-from pathlib import Path
 
 import pytest
 from astropy.table import Table
 
-from conftest import REPO_ROOT
+# the night (fixture reduced_night) is reduced once per session in conftest.py
+from conftest import REPO_ROOT, file_digests as _digests, run_snakemake as _snakemake
 
 pytestmark = pytest.mark.slow
-
-SNAKEMAKE = [sys.executable, "-m", "snakemake"]
-
-
-def _snakemake(*args, check=True):
-    result = subprocess.run([*SNAKEMAKE, *args], cwd=REPO_ROOT, capture_output=True, text=True)
-    if check and result.returncode != 0:
-        raise AssertionError(f"snakemake {' '.join(args)} failed:\n{result.stdout[-4000:]}\n"
-                             f"{result.stderr[-8000:]}")
-    return result
-
-
-def _digests(folder):
-    return {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in sorted(folder.iterdir())
-            if p.is_file()}
 
 
 def _planned_rules(dry_run_output):
@@ -50,20 +31,6 @@ def _planned_rules(dry_run_output):
             elif line.strip() == "" and rules:
                 break
     return rules
-
-
-@pytest.fixture(scope="module")
-def reduced_night(tmp_path_factory):
-    base = tmp_path_factory.mktemp("night")
-    raw, out = base / "raw", base / "out"
-    subprocess.run([sys.executable, "-m", "demo_data.simulate", "--out", str(raw)], check=True,
-                   cwd=REPO_ROOT, capture_output=True)
-    before = _digests(raw)
-    config = [f"raw_dir={raw}", f"out_dir={out}"]
-    start = time.perf_counter()
-    run = _snakemake("--cores", "2", "--config", *config)
-    elapsed = time.perf_counter() - start
-    return dict(raw=raw, out=out, before=before, config=config, run=run, elapsed=elapsed)
 
 
 def test_raw_files_are_byte_identical_after_the_run(reduced_night):
