@@ -11,7 +11,7 @@ _CR_PAD = 6
 
 
 def find_cosmic_rays(data_e, *, read_noise_e, mask=None, detection_limit_sigma=4.5,
-                     neighbour_fraction=0.3, contrast_limit=5.0, passes=2):
+                     neighbour_fraction=0.3, contrast_limit=5.0, passes=1):
     """Flag cosmic-ray hits by the Laplacian method (van Dokkum 2001, PASP 113, 1420).
 
     Uses astroscrappy's implementation of the method; our option names map to its

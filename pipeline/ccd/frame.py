@@ -83,53 +83,55 @@ def calibrate_ccd(raw_adu, *, data_section, overscan_section, orientation, gain_
     raw = as_2d(raw_adu, "raw_adu", dtype=np.float32)
     gain = positive(gain_e_per_adu, "gain_e_per_adu")
     rn = positive(read_noise_e, "read_noise_e", allow_zero=True)
+    # Whole-frame passes are what this costs at full size: each array below is made once
+    # and then updated in place (the same float32 operations, in the same order).
     nonfinite_raw = ~np.isfinite(raw)
-    saturated_raw = np.zeros(raw.shape, bool) if saturation_adu is None else (raw >= saturation_adu)
-    raw_clean = np.where(nonfinite_raw, 0, raw) if nonfinite_raw.any() else raw
+    any_nonfinite = bool(nonfinite_raw.any())
+    raw_clean = np.where(nonfinite_raw, 0, raw) if any_nonfinite else raw
     data_adu, ov_fit = correct_and_trim(raw_clean, data_section=data_section,
                                         overscan_section=overscan_section,
                                         orientation=orientation,
                                         overscan_options=overscan_options)
     rows, cols = data_section.slices
-    saturated = np.ascontiguousarray(orientation.apply(saturated_raw[rows, cols]))
-    nonfinite = np.ascontiguousarray(orientation.apply(nonfinite_raw[rows, cols]))
     shape = data_adu.shape
     mask = np.zeros(shape, dtype=MASK_DTYPE)
-    mask[saturated] |= _SAT
-    mask[nonfinite] |= _NONFINITE
+    n_saturated = 0
+    if saturation_adu is not None:
+        saturated_raw = raw[rows, cols] >= saturation_adu
+        n_saturated = int(np.count_nonzero(saturated_raw))
+        if n_saturated:
+            mask[np.ascontiguousarray(orientation.apply(saturated_raw))] |= _SAT
+        del saturated_raw
+    if any_nonfinite:
+        mask[np.ascontiguousarray(orientation.apply(nonfinite_raw[rows, cols]))] |= _NONFINITE
+    del nonfinite_raw, raw_clean
     for name, arr in (("bias_adu", bias_adu), ("bias_variance_adu2", bias_variance_adu2),
                       ("bias_mask", bias_mask), ("flat", flat), ("flat_variance", flat_variance),
                       ("flat_mask", flat_mask)):
         if arr is not None and np.shape(arr) != shape:
             raise ValueError(f"`{name}` has shape {np.shape(arr)}, expected {shape} (the "
                              "trimmed, oriented frame)")
-    if bias_adu is not None:
-        data_adu = data_adu - np.asarray(bias_adu, dtype=np.float32)
-    electrons = data_adu * np.float32(gain)
-    var = np.float32(rn ** 2) + np.maximum(electrons, 0)
-    if bias_variance_adu2 is not None:
-        bias_var = np.nan_to_num(np.asarray(bias_variance_adu2, np.float32))
-        var = var + bias_var * np.float32(gain ** 2)
-    if bias_mask is not None:
-        mask |= np.asarray(bias_mask, dtype=MASK_DTYPE)
-    if flat is not None:
-        fl = np.asarray(flat, dtype=np.float32)
-        bad_flat = ~np.isfinite(fl) | (fl <= 0)
-        fl = np.where(bad_flat, 1.0, fl).astype(np.float32)
-        data = electrons / fl
-        var = var / fl ** 2
-        if include_flat_error and flat_variance is not None:
-            var = var + data ** 2 * np.nan_to_num(np.asarray(flat_variance, np.float32)) / fl ** 2
-        mask[bad_flat] |= _BAD
-        if flat_mask is not None:
-            mask |= np.asarray(flat_mask, dtype=MASK_DTYPE)
-    else:
-        data = electrons
-    bad_values = ~np.isfinite(data) | ~np.isfinite(var)
-    if bad_values.any():
-        mask[bad_values] |= _NONFINITE
-        data = np.where(bad_values, 0, data)
-        var = np.where(bad_values, np.float32(rn ** 2 if rn > 0 else 1.0), var)
+    data = data_adu                       # a new array: electrons, then flat-fielded, in place
+    var = np.empty(shape, dtype=np.float32)
+    bias = None if bias_adu is None else np.asarray(bias_adu, dtype=np.float32)
+    bias_var = None if bias_variance_adu2 is None else _finite_or_zero(
+        np.asarray(bias_variance_adu2, np.float32))
+    fl = None if flat is None else np.asarray(flat, dtype=np.float32)
+    flat_var = None
+    if fl is not None and include_flat_error and flat_variance is not None:
+        flat_var = _finite_or_zero(np.asarray(flat_variance, np.float32))
+    masks = [np.asarray(m, dtype=MASK_DTYPE) for m in (bias_mask, flat_mask if fl is not None
+                                                        else None) if m is not None]
+    # blocks of rows small enough to stay in the processor's cache between operations
+    block = max(1, _BLOCK_PIXELS // shape[1])
+    for r0 in range(0, shape[0], block):
+        rs = slice(r0, min(r0 + block, shape[0]))
+        _calibrate_rows(data[rs], var[rs], mask[rs], gain=gain, rn=rn,
+                        bias=None if bias is None else bias[rs],
+                        bias_var=None if bias_var is None else bias_var[rs],
+                        flat=None if fl is None else fl[rs],
+                        flat_var=None if flat_var is None else flat_var[rs],
+                        masks=[m[rs] for m in masks])
     n_cosmic = 0
     if cosmic_rays:
         crmask = find_cosmic_rays(data, read_noise_e=max(rn, 1e-3),
@@ -137,9 +139,56 @@ def calibrate_ccd(raw_adu, *, data_section, overscan_section, orientation, gain_
                                   **(cosmic_ray_options or {}))
         mask[crmask] |= _CR
         n_cosmic = int(crmask.sum())
-    info = {"gain_e_per_adu": gain, "read_noise_e": rn, "n_saturated": int(saturated.sum()),
+    info = {"gain_e_per_adu": gain, "read_noise_e": rn, "n_saturated": n_saturated,
             "n_cosmic": n_cosmic, "overscan": None if ov_fit is None else ov_fit.info}
-    return CalibratedFrame(data.astype(np.float32), var.astype(np.float32), mask, info)
+    return CalibratedFrame(data.astype(np.float32, copy=False),
+                           var.astype(np.float32, copy=False), mask, info)
+
+
+#: pixels per block of rows in :func:`calibrate_ccd` (~1 MB per float32 array)
+_BLOCK_PIXELS = 2 ** 18
+
+
+def _calibrate_rows(data, var, mask, *, gain, rn, bias, bias_var, flat, flat_var, masks):
+    """Bias, gain, flat, variance and mask of a block of rows, in place (see calibrate_ccd).
+
+    ``data`` holds overscan-corrected ADU on entry and flat-fielded electrons on return.
+    """
+    if bias is not None:
+        data -= bias
+    data *= np.float32(gain)
+    np.maximum(data, np.float32(0), out=var)
+    var += np.float32(rn ** 2)
+    if bias_var is not None:
+        var += bias_var * np.float32(gain ** 2)
+    for m in masks:
+        mask |= m
+    if flat is not None:
+        bad_flat = ~(flat > 0)                                # NaN and <= 0
+        bad_flat |= np.isinf(flat)
+        if bad_flat.any():
+            flat = np.where(bad_flat, np.float32(1.0), flat)
+            mask[bad_flat] |= _BAD
+        fl2 = np.square(flat)
+        data /= flat
+        var /= fl2
+        if flat_var is not None:
+            term = np.square(data)
+            term *= flat_var
+            term /= fl2
+            var += term
+    bad_values = ~np.isfinite(data)
+    bad_values |= ~np.isfinite(var)
+    if bad_values.any():
+        mask[bad_values] |= _NONFINITE
+        data[bad_values] = 0
+        var[bad_values] = np.float32(rn ** 2 if rn > 0 else 1.0)
+
+
+def _finite_or_zero(values):
+    """``numpy.nan_to_num(values)`` (NaN -> 0, inf -> the largest float), copying only when
+    there is something to replace."""
+    return values if np.isfinite(values).all() else np.nan_to_num(values)
 
 
 

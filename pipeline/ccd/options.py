@@ -20,7 +20,7 @@ CALIBRATION_DEFAULTS = {"use_measured_gain": True, "use_measured_read_noise": Tr
                         "include_flat_error": True,
                         "cosmic_rays": {"enabled": True, "detection_limit_sigma": 4.5,
                                         "neighbour_fraction": 0.3, "contrast_limit": 5.0,
-                                        "passes": 2}}
+                                        "passes": 1}}
 
 
 def overscan_kwargs(overscan):
