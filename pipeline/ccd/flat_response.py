@@ -62,15 +62,36 @@ def _knots_with_data(xs, knot_spacing, k=3):
     n_int = int((hi - lo) // max(float(knot_spacing), 1.0))
     if n_int < 2:
         return np.array([])
+    candidates = np.linspace(lo, hi, n_int + 1)[1:-1]
+    # the counts at every candidate at once; only the choice depends on the last kept knot
+    left = np.searchsorted(xs, candidates, "left")
+    right = np.searchsorted(xs, candidates, "right")
     kept = []
-    last = lo
-    for t in np.linspace(lo, hi, n_int + 1)[1:-1]:
-        between = np.searchsorted(xs, t, "left") - np.searchsorted(xs, last, "right")
-        beyond = xs.size - np.searchsorted(xs, t, "right")
-        if between >= 2 and beyond >= k + 1:
+    last_right = int(np.searchsorted(xs, lo, "right"))
+    for t, n_left, n_right in zip(candidates, left.tolist(), right.tolist()):
+        if n_left - last_right >= 2 and xs.size - n_right >= k + 1:
             kept.append(t)
-            last = t
+            last_right = n_right
     return np.array(kept)
+
+
+def _nanmedian_rows(values):
+    """``numpy.nanmedian(values, axis=1)``, taking the faster ``numpy.median`` for the rows
+    without NaN (the same numbers)."""
+    values = np.asarray(values)
+    nan_rows = np.isnan(values).any(axis=1)
+    if not nan_rows.any():
+        return np.median(values, axis=1)
+    out = np.empty(values.shape[0])
+    out[~nan_rows] = np.median(values[~nan_rows], axis=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)       # rows all NaN: NaN
+        out[nan_rows] = np.nanmedian(values[nan_rows], axis=1)
+    return out
+
+
+#: columns per chunk of the lamp-spectrum statistics (bounds the temporary arrays)
+_LAMP_CHUNK_COLUMNS = 256
 
 
 def _spline_smooth(x, y, *, knot_spacing, sigma=3.0, maxiters=5, x_eval=None):
@@ -201,17 +222,19 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
         raise ValueError(f"`variance` must have the shape of `flat` {f.shape}, got {var.shape}")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        profile = np.nanmedian(f, axis=1)
+        profile = _nanmedian_rows(f)
         top = np.nanpercentile(profile, 95)
         if not np.isfinite(top) or top <= 0:
             raise CalibrationError("the combined flat has no positive signal; expected "
                                    "lamp-illuminated frames")
         rows_lit = profile > min_slit_illumination * top
         p_norm = profile / np.nanmean(profile[rows_lit])
-        ratio = f[rows_lit] / p_norm[rows_lit, None]
-        _, lamp_raw, _ = _clipped_stats(ratio, axis=0, sigma=3.0, maxiters=3,
-                                             cenfunc="median", stdfunc="mad_std")
-        lamp_raw = np.asarray(lamp_raw, float)
+        # clipped per column, so chunks of columns give the same numbers with less memory
+        lit_rows, p_lit = np.nonzero(rows_lit)[0], p_norm[rows_lit, None]
+        lamp_raw = np.concatenate([np.asarray(_clipped_stats(
+            f[lit_rows, c0:c0 + _LAMP_CHUNK_COLUMNS] / p_lit, axis=0, sigma=3.0, maxiters=3,
+            cenfunc="median", stdfunc="mad_std")[1], float)
+            for c0 in range(0, nx, _LAMP_CHUNK_COLUMNS)])
     x = np.arange(nx, dtype=float)
     lamp = _spline_smooth(x, lamp_raw, knot_spacing=lamp_knot_spacing_px)
     lamp = np.where(lamp > 0, lamp, np.nan)
@@ -227,7 +250,7 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
     for c0, c1 in zip(edges[:-1], edges[1:]):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            prof = np.nanmedian(r[:, c0:c1], axis=1)
+            prof = _nanmedian_rows(r[:, c0:c1])
         smooth = np.ones(ny)
         if lit_idx.size >= 5:
             smooth[lit_idx[0]:lit_idx[-1] + 1] = _spline_smooth(
@@ -237,6 +260,7 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
         profiles.append(smooth)
         with np.errstate(divide="ignore", invalid="ignore"):
             misfits.append(np.abs(prof / smooth - 1))
+    del r
     profiles = np.array(profiles).T  # (ny, nbins)
     # Slit ends: the smooth profile cannot follow the steep edge. Lit rows at either end
     # whose profile misses the fit by more than _EDGE_MISFIT (median over the bins) are
@@ -259,38 +283,52 @@ def normalise_flat(flat, variance=None, *, lamp_knot_spacing_px=40.0,
         illum = interp1d(centres, profiles, axis=1, bounds_error=False,
                          fill_value=(profiles[:, 0], profiles[:, -1]))(x)
     illum_level = np.nanmean(illum[rows_lit]) if rows_lit.any() else 1.0
-    illum = illum / illum_level
+    illum /= illum_level
+    # Full-frame float64 arrays are what this costs in memory at full size: each one below
+    # is freed, or updated in place, as soon as it is no longer needed (the same numbers).
     model = lamp[None, :] * (illum if not keep_slit_illumination else 1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         response = f / model
-        resp_var = None if var is None else var / model ** 2
+        resp_var = None
+        if var is not None:
+            model **= 2
+            resp_var = var / model
+    del model
     unlit = ~rows_lit[:, None] | (illum < min_slit_illumination) | ~np.isfinite(response)
     if var is not None:
         with np.errstate(divide="ignore", invalid="ignore"):
-            snr = f / np.sqrt(var)
+            snr = np.sqrt(var)
+            np.divide(f, snr, out=snr)
         unlit |= ~(snr >= min_flat_snr)
-    unlit = np.broadcast_to(unlit, f.shape).copy()
+        del snr
+    shape = f.shape
+    del f, var
+    unlit = np.broadcast_to(unlit, shape).copy()
     good = ~unlit
     if not good.any():
         raise CalibrationError("no illuminated pixel in the combined flat; check "
                                "flat.min_slit_illumination and flat.min_flat_snr")
     sample = _subsample(response[good])
     norm, _, _ = _clipped_stats(sample, sigma=3.0, maxiters=5)
-    response = response / norm
+    response /= norm
     if resp_var is not None:
-        resp_var = resp_var / norm ** 2
+        resp_var /= norm ** 2
     _, med, scatter = _clipped_stats(sample / norm, sigma=5.0, maxiters=5,
                                      cenfunc="median", stdfunc="mad_std")
     bad = good & ((response < min_response) | (response > max_response)
                   | (np.abs(response - 1.0) > deviant_sigma * max(scatter, _MIN_RESPONSE_SCATTER)))
-    mask = np.zeros(f.shape, dtype=MASK_DTYPE)
+    del good
+    mask = np.zeros(shape, dtype=MASK_DTYPE)
     mask[unlit] |= _UNLIT
     mask[bad] |= _BAD
     flagged = mask != 0
-    response = np.where(flagged, 1.0, response).astype(np.float32)
+    response[flagged] = 1.0
+    response = response.astype(np.float32)
     if resp_var is None:
-        resp_var = np.zeros(f.shape)
-    resp_var = np.where(flagged | ~np.isfinite(resp_var), 0.0, resp_var).astype(np.float32)
+        resp_var = np.zeros(shape)
+    flagged |= ~np.isfinite(resp_var)
+    resp_var[flagged] = 0.0
+    resp_var = resp_var.astype(np.float32)
     info = {"norm": float(norm), "response_scatter": float(scatter),
             "n_bad": int(bad.sum()), "n_unilluminated": int(unlit.sum()),
             "illuminated_rows": [int(lit_idx[0]), int(lit_idx[-1])] if lit_idx.size else [],
