@@ -19,9 +19,9 @@ Steps (each a pure function on arrays):
 The rule's adapter (:func:`pipeline.wavelength.steps.find_arc_lines_file`) reads a
 calibrated arc frame and writes the line table (ECSV) for the wavelength solution.
 
-(Longer than the ~500 lines the project aims at: detection, the vectorised window fits
-and the deblending passes share the window arrays and flags; split apart they would hand
-half a dozen arrays between modules.)
+Longer than 500 lines because detection, the vectorised window fits and the deblending
+passes share the window arrays and flags; split apart they would hand half a dozen arrays
+between modules.
 """
 
 import math

@@ -25,8 +25,8 @@ against published formulas; :class:`GratingModel` combines them for one
 instrument setup. :func:`main` prints a summary for an observer checking a
 setup before the night (the ``longslit-grating`` command).
 
-(Longer than the ~500 lines the project aims at: most of it is the small published
-formulas, one short function each with its reference, which read best side by side.)
+Longer than 500 lines because most of it is the small published formulas, one short
+function each with its reference, which read best side by side.
 
 Units: wavelengths in Angstrom (air: the grating works in air, so
 ``m lambda_air = d (sin alpha + sin beta)`` holds exactly for air
