@@ -136,7 +136,7 @@ def combine_bias(frames, *, clip_sigma=3.0, clip_iterations=5, block_rows=128,
     out = np.empty(shape, dtype=np.float32)
     used = np.empty(shape, dtype=np.int32)
     stack = np.empty((n, min(block, shape[0]), shape[1]), dtype=np.float32)
-    stats = [PixelStatistics(0, 0, 0, 0, np.inf, -np.inf)] * n
+    stats = [PixelStatistics(0, 0, 0, np.inf, -np.inf)] * n
     for r0 in range(0, shape[0], block):
         r1 = min(r0 + block, shape[0])
         s = stack[:, : r1 - r0]

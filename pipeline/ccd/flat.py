@@ -135,7 +135,7 @@ def flat_problem(stats, level_adu):
     saturated pixels are NaN; ``level_adu``: :func:`flat_scale`.
 
     >>> from pipeline.ccd.screening import PixelStatistics
-    >>> flat_problem(PixelStatistics(100, 0, 0, 0, -3.0, 4.0), -0.5)
+    >>> flat_problem(PixelStatistics(100, 0, 0, -3.0, 4.0), -0.5)
     'no lamp light: level -0.5 ADU above the bias'
     """
     text = pixel_problem(stats, what="flat")
