@@ -40,10 +40,15 @@ import yaml
 
 
 def _config():
-    """The config of the ``pipeline`` imported (so an older checkout on PYTHONPATH can be timed)."""
-    import pipeline
-    return yaml.safe_load((Path(pipeline.__file__).parents[1] / "config" / "config.yaml")
-                          .read_text())
+    """The demo night's full config, as Snakemake sees it, of the ``pipeline`` imported (so an
+    older checkout on PYTHONPATH can be timed too)."""
+    try:
+        from pipeline.workflow.layers import load_night_config
+    except ImportError:                        # before the config was layered
+        import pipeline
+        return yaml.safe_load((Path(pipeline.__file__).parents[1] / "config" / "config.yaml")
+                              .read_text())
+    return load_night_config()
 
 
 def _rss_mb():
