@@ -31,6 +31,7 @@ include: "pipeline/rules/ccd.smk"
 include: "pipeline/rules/wavelength.smk"
 include: "pipeline/rules/extraction.smk"
 include: "pipeline/rules/fluxcal.smk"
+include: "pipeline/rules/combine.smk"
 include: "pipeline/rules/products.smk"
 
 

@@ -42,6 +42,11 @@ KINDS = (
     ("spectra_fluxed/*/*.fits", "spectrum_1d_fluxed"),
     ("spectra_fluxed/*/*.ecsv", "fluxed_listing"),
     ("flux/sensitivity_*", "sensitivity"),
+    ("combined/*.ecsv", "coadd_listing"),
+    ("combined/*.png", "qa_figure"),
+    ("combined/*_spliced.fits", "spectrum_spliced"),
+    ("combined/*/*.fits", "spectrum_science_frame"),
+    ("combined/*.fits", "spectrum_coadd"),
     ("qa/*.png", "qa_figure"),
     ("qa/*", "qa_table"),
 )

@@ -17,6 +17,7 @@ PNG. Gathering lives in :mod:`pipeline.products.collect`, words and digits in
 import base64
 import html
 import io
+import math
 from collections import Counter
 from datetime import datetime, timezone
 from pathlib import Path
@@ -38,7 +39,7 @@ h1 { font-size: 1.45em; margin-bottom: 0.2em; } h2 { border-bottom: 2px solid #4
 .wrap { overflow-x: auto; max-width: 100%; }
 table { border-collapse: collapse; margin: 0.3em 0 1em 0; font-size: 0.86em; }
 th, td { border: 1px solid #c8c8c8; padding: 0.2em 0.5em; text-align: left; vertical-align: top; }
-th { background: #e6edf5; font-weight: 600; } td.num { text-align: right;
+th { background: #e6edf5; font-weight: 600; } td:first-child { white-space: nowrap; } td.num { text-align: right;
      font-variant-numeric: tabular-nums; }
 .mark { display: inline-block; min-width: 3.2em; text-align: center; border-radius: 3px;
         padding: 0 0.3em; font-weight: 600; font-size: 0.9em; }
@@ -233,6 +234,22 @@ def _night_section(out_dir, manifest, night_log, *, spatial_scale_arcsec_per_px,
     return "\n".join(parts)
 
 
+def _coadd_row(rel, row):
+    """One line of the combined-spectra table: what a person needs to pick a spectrum."""
+    kind = str(row["kind"])
+    inputs = "flux-calibrated" if str(row["input_kind"]) == "fluxed" else "e⁻ s⁻¹ Å⁻¹ (not fluxed)"
+    setups = str(row["setup"]).split(",")
+    where = setups[0] if len(setups) == 1 else f"{len(setups)} setups"
+    scale = ""
+    if kind == "splice" and math.isfinite(float(row["splice_scale"])):
+        scale = f"{float(row['splice_scale']):.3f} ± {float(row['splice_scale_err']):.3f}"
+    snr = format_value(float(row["snr_median"])) if kind != "splice" else ""
+    link = _link(str(Path(rel).parent / str(row["file"])), as_text(row["object"]))
+    return [link, where, kind, int(row["n_exposures"]), as_text(row["frames"]).replace(",", ", "),
+            inputs, snr, int(row["n_rejected"]) if kind != "splice" else "", scale,
+            as_text(row["note"])]
+
+
 def _coadd_section(out_dir, manifest):
     rels = [str(r["path"]) for r in manifest if r["kind"] == "coadd_listing" and r["status"] == "ok"]
     if not rels:
@@ -243,12 +260,23 @@ def _coadd_section(out_dir, manifest):
             table = Table.read(Path(out_dir) / rel, format="ascii.ecsv")
         except Exception:  # noqa: BLE001
             continue
-        cols = [c for c in table.colnames if table[c].ndim == 1]
-        rows = [[_link(str(Path(rel).parent / str(row[c])), str(row[c])) if c == "file"
-                 else format_value(row[c], c) for c in cols] for row in table]
-        parts.append(_table([label(c) for c in cols], rows))
+        medium = "vacuum" if table.meta.get("vacuum_wavelengths") else "air"
+        parts.append(f"<p class='muted'>Wavelengths: {medium}, {_esc(table.meta.get('velocity_frame', ''))} "
+                     "frame. Coadds: inverse-variance mean of the exposures of one target in one "
+                     "setup; splices: two setups on one grid, the flux scale measured in their "
+                     "overlap (1 expected for flux-calibrated spectra).</p>")
+        rows = [_coadd_row(rel, row) for row in table]
+        marks = []
+        for row in table:
+            scale = float(row["splice_scale"]) if row["kind"] == "splice" else math.nan
+            off = (str(row["input_kind"]) == "fluxed" and math.isfinite(scale)
+                   and abs(scale - 1.0) > max(0.05, 3 * float(row["splice_scale_err"])))
+            marks.append(Mark.WARN if off else "")
+        parts.append(_table(("target (file)", "setup", "kind", "exposures", "frames", "inputs",
+                             "median S/N", "rejected px", "splice scale", "note"), rows,
+                            row_marks=marks, numeric=(3, 6, 7)))
     figures = [str(r["path"]) for r in manifest if r["kind"] == "qa_figure" and r["status"] == "ok"
-               and "coadd" in Path(str(r["path"])).name]
+               and Path(str(r["path"])).name.endswith("_coadd.png")]
     parts.append(_thumbnails(figures))
     parts.append("</section>")
     return "\n".join(parts)
@@ -269,9 +297,9 @@ def _thumbnails(figures):
 
 
 #: headings of the QA figures by what their names say (first match wins)
-_FIGURE_GROUPS = (("_wavelength_", "Wavelength solutions"), ("sensitivity_", "Sensitivity"),
-                  ("_fluxed", "Flux-calibrated spectra"), ("_rectified", "Rectified frames"),
-                  ("_spectra", "Extracted spectra"), ("coadd", "Combined spectra"))
+_FIGURE_GROUPS = (("_coadd.png", "Combined spectra"), ("_wavelength_", "Wavelength solutions"),
+                  ("sensitivity_", "Sensitivity"), ("_fluxed", "Flux-calibrated spectra"),
+                  ("_rectified", "Rectified frames"), ("_spectra", "Extracted spectra"))
 
 
 def _figures_section(manifest):

@@ -39,6 +39,7 @@ STEPS = {
     "extract_spectra": ("pipeline.extraction.steps", "extract_frame_file"),
     "fit_sensitivity": ("pipeline.fluxcal.steps", "fit_sensitivity_file"),
     "flux_calibrate": ("pipeline.fluxcal.steps", "flux_calibrate_file"),
+    "combine_spectra": ("pipeline.combine.steps", "combine_spectra_file"),
     "manifest": ("pipeline.products.manifest", "write_manifest_file"),
     "night_report": ("pipeline.products.report", "write_night_report_file"),
 }
