@@ -862,6 +862,157 @@ def check_redshift(rep, truth, out_dir, log, ext_cache):
                           fmt="{:+.2f}")
 
 
+# =============================================================================== combined
+COADD_SNR_TARGET_PCT = 5.0          # issue target: S/N gain vs sqrt(n) / inverse-variance prediction
+COADD_FLUX_TARGET_PCT = 3.0         # issue target: coadd flux vs truth
+COADD_REDSHIFT_TARGET_KMS = 5.0     # issue goal: barycentric vacuum redshift of the galaxy coadd
+SPLICE_SCALE_TARGET = 0.03          # * |scale - 1| of flux-calibrated setups in their overlap
+
+
+def _read_combined(path):
+    with fits.open(path) as h:
+        hdr = h[0].header
+        flux = h[0].data.astype(float)
+        var = h["VAR"].data.astype(float)
+        mask = h["MASK"].data
+        frames = Table(h["FRAMES"].data)
+    return spectral_axis(hdr, flux.size), flux, var, mask, hdr, frames
+
+
+def _to_topocentric_air(wave, hdr):
+    """The axis of a combined product back in topocentric air (specutils' Ciddor 1996, the
+    same formula the product names in AIRVACF; the correction from the header)."""
+    import astropy.units as u
+    from specutils.utils.wcs_utils import vac_to_air
+
+    topo = wave / (1.0 + float(hdr.get("VCORR", 0.0)) / C_KM_S)
+    if str(hdr.get("CTYPE1", "")).startswith("WAVE"):
+        method = str(hdr.get("AIRVACF", "Ciddor1996"))
+        topo = vac_to_air(topo * u.AA, method=method).to_value(u.AA)
+    return topo
+
+
+def _astropy_v_bary(truth, target, date_avg):
+    """Barycentric correction at the product's mid-exposure time, computed here with astropy
+    from the truth's target coordinates and site (not from the product's header value)."""
+    import astropy.units as u
+    from astropy.coordinates import EarthLocation, SkyCoord, solar_system_ephemeris
+    from astropy.time import Time
+    from astropy.utils import iers
+
+    site = truth.index["site"]
+    tinfo = truth.index["targets"][target]
+    loc = EarthLocation.from_geodetic(lon=site["longitude_deg"] * u.deg,
+                                      lat=site["latitude_deg"] * u.deg, height=site["height_m"] * u.m)
+    with iers.conf.set_temp("auto_download", False), iers.conf.set_temp("auto_max_age", None), \
+            solar_system_ephemeris.set("builtin"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        v = SkyCoord(tinfo["ra_deg"] * u.deg, tinfo["dec_deg"] * u.deg).radial_velocity_correction(
+            "barycentric", obstime=Time(date_avg, scale="utc"), location=loc)
+    return float(v.to_value(u.km / u.s))
+
+
+def check_combined(rep, truth, out_dir, log):
+    folder = Path(out_dir) / "combined"
+    listing_path = folder / "combined.ecsv"
+    if not listing_path.exists():
+        rep.missing("combined", "listing", "combined.ecsv", "combined/")
+        return
+    listing = Table.read(listing_path, format="ascii.ecsv")
+    multi = [r for r in listing if r["kind"] == "coadd" and int(r["n_exposures"]) >= 2]
+    if not multi:
+        rep.add("combined", "coadds", "targets with >= 2 exposures in one setup",
+                "none in this night (S/N gain not measurable)")
+    for row in multi:
+        item = f"{row['object']} {row['setup']}"
+        wave, flux, var, mask, hdr, frames = _read_combined(folder / str(row["file"]))
+        singles = [_read_combined(folder / Path(str(row["file"])).stem / f"{f}.fits")
+                   for f in frames["frame"]]
+        good = (mask == 0) & np.all([(s[3] == 0) for s in singles], axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            predicted = 1.0 / np.sum([1.0 / s[2] for s in singles], axis=0)
+            gain = np.median(np.sqrt(predicted[good] / var[good]))
+        rep.check_max("combined", item, "coadd variance vs inverse-variance prediction: "
+                      "S/N ratio - 1 (%)", 100 * abs(gain - 1), COADD_SNR_TARGET_PCT, fmt="{:.2f}")
+        exptimes = np.asarray(frames["exptime_s"], float)
+        if np.allclose(exptimes, exptimes[0]):
+            with np.errstate(divide="ignore", invalid="ignore"):
+                snr_one = np.median(np.sqrt(singles[0][2][good] / var[good]))
+            rep.check_max("combined", item, f"S/N(coadd)/S/N(one) / sqrt({len(singles)}) - 1 (%)",
+                          100 * abs(snr_one / np.sqrt(len(singles)) - 1), COADD_SNR_TARGET_PCT,
+                          fmt="{:.2f}")
+    for row in [r for r in listing if r["kind"] == "coadd" and r["input_kind"] == "fluxed"]:
+        target = str(row["object"])
+        tinfo = truth.index["targets"].get(target, {})
+        if tinfo.get("kind") != "point":
+            continue
+        item = f"{target} {row['setup']} ({int(row['n_exposures'])} exp)"
+        wave, flux, var, mask, hdr, _ = _read_combined(folder / str(row["file"]))
+        topo = _to_topocentric_air(wave, hdr)
+        tw, tf = truth.spectrum(target)
+        cum = np.concatenate([[0.0], np.cumsum(0.5 * (tf[1:] + tf[:-1]) * np.diff(tw))])
+        e = _edges(topo)
+        expected = np.diff(np.interp(e, tw, cum)) / np.diff(e)
+        ok = (mask == 0) & np.isfinite(flux) & (expected > 0)
+        for lo, hi in TELLURIC_ANGSTROM:
+            ok &= ~((topo > lo) & (topo < hi))
+        if ok.sum() < 20:
+            continue
+        _, ratios = _binned_ratio(topo, flux, expected, ok, FLUX_BIN_ANGSTROM)
+        rep.check_max("combined", item, "median coadd/true f_lambda - 1 (%)",
+                      100 * (float(np.median(ratios)) - 1), COADD_FLUX_TARGET_PCT, fmt="{:+.2f}")
+    for row in [r for r in listing if r["kind"] in ("coadd", "splice")]:
+        target = str(row["object"])
+        tinfo = truth.index["targets"].get(target, {})
+        if not tinfo.get("lines"):
+            continue
+        import astropy.units as u
+        from specutils.utils.wcs_utils import air_to_vac
+
+        item = f"{target} {row['setup'] if row['kind'] == 'coadd' else 'spliced'}"
+        wave, flux, var, mask, hdr, frames = _read_combined(folder / str(row["file"]))
+        if not str(hdr.get("CTYPE1", "")).startswith("WAVE") or hdr.get("SPECSYS") != "BARYCENT":
+            rep.add("combined", item, "redshift", "product not vacuum/barycentric: not checked")
+            continue
+        z_true = float(tinfo["redshift"])
+        # truth: observed(air, topocentric) = rest_air * (1 + z); unless the truth gives its
+        # own barycentric vacuum redshift, the expected barycentric z follows from astropy's
+        # correction at the product's time
+        date_avg = str(hdr.get("DATE-AVG", frames["mid_exposure_utc"][0]))
+        v_bary = _astropy_v_bary(truth, target, date_avg)
+        z_expect = float(tinfo.get("redshift_barycentric_vacuum",
+                                   (1 + z_true) * (1 + v_bary / C_KM_S) - 1))
+        vac_lines = [dict(ln, rest_wavelength_angstrom=float(air_to_vac(
+            ln["rest_wavelength_angstrom"] * u.AA, method="Ciddor1996",
+            scheme="iteration").to_value(u.AA))) for ln in tinfo["lines"]]
+        good = (mask == 0) & (var > 0)
+        norm = float(np.nanmedian(np.abs(flux[good]))) or 1.0   # the line fit works in O(1) units
+        z, z_err, per = _redshift(wave, flux / norm, var / norm ** 2, good, vac_lines, z_expect)
+        dv = C_KM_S * (z - z_expect) / (1 + z_expect)
+        rep.check_max("combined", item, "barycentric vacuum z - expected (km/s)", dv,
+                      COADD_REDSHIFT_TARGET_KMS, fmt="{:+.2f}")
+        rep.add("combined", item, "  z [err km/s]; lines", f"{z:.6f} [{C_KM_S * z_err:.2f}]; "
+                + ", ".join(f"{n} {C_KM_S * (zz - z_expect) / (1 + z_expect):+.1f}"
+                            for n, zz in per))
+        rep.add("combined", item, "  v_bary astropy here / header (km/s)",
+                f"{v_bary:+.3f} / {float(hdr.get('VCORR', np.nan)):+.3f}")
+        dv_forgot = C_KM_S * ((1 + z) / (1 + float(hdr.get("VCORR", 0.0)) / C_KM_S) - 1
+                              - z_expect) / (1 + z_expect)
+        rep.add("combined", item, "  the same without the correction (km/s)",
+                dv_forgot, f"<= {COADD_REDSHIFT_TARGET_KMS:g} would fail",
+                "info" if abs(dv_forgot) > COADD_REDSHIFT_TARGET_KMS else "SHORT", "{:+.2f}")
+    for row in [r for r in listing if r["kind"] == "splice"]:
+        item = f"{row['object']} spliced"
+        scale, err = float(row["splice_scale"]), float(row["splice_scale_err"])
+        if row["input_kind"] == "fluxed":
+            rep.check_max("combined", item, "overlap flux scale - 1 (flux-calibrated)",
+                          scale - 1, SPLICE_SCALE_TARGET, chosen=True, fmt="{:+.4f}")
+            rep.add("combined", item, "  its error", err, "", "info", "{:.4f}")
+        else:
+            rep.add("combined", item, "overlap scale (uncalibrated, applied)",
+                    f"{scale:.4f} +- {err:.4f}")
+
+
 # =============================================================================== main
 def check_products(raw_dir, out_dir, truth_dir):
     truth = Truth(truth_dir)
@@ -881,6 +1032,7 @@ def check_products(raw_dir, out_dir, truth_dir):
     check_extraction(rep, truth, out_dir, log, cache)
     check_flux(rep, truth, out_dir, log, cache)
     check_redshift(rep, truth, out_dir, log, cache)
+    check_combined(rep, truth, out_dir, log)
     return rep
 
 

@@ -140,3 +140,21 @@ def test_full_tables_use_words_and_fold_away(tmp_path):
     tables = _section(_report(out), "tables")
     assert "<details>" in tables and "residual (Å)" in tables
     assert "residual_angstrom" not in tables
+
+
+def test_combined_spectra_section_flags_a_splice_scale_off_one(tmp_path):
+    out = _out_dir(tmp_path)
+    (out / "combined").mkdir()
+    listing = Table(rows=[
+        ("TFG-42", "SETUPA", "TFG-42_SETUPA.fits", "coadd", 3, "a,b,c", "fluxed", "erg", 12.5, 4,
+         np.nan, np.nan, ""),
+        ("TFG-42", "SETUPA,SETUPB", "TFG-42_spliced.fits", "splice", 4, "a,b,c,d", "fluxed",
+         "erg", np.nan, 0, 1.12, 0.01, "scale measured only (flux-calibrated)"),
+    ], names=("object", "setup", "file", "kind", "n_exposures", "frames", "input_kind", "unit",
+              "snr_median", "n_rejected", "splice_scale", "splice_scale_err", "note"))
+    listing.meta.update(velocity_frame="barycentric", vacuum_wavelengths=True)
+    listing.write(out / "combined" / "combined.ecsv", format="ascii.ecsv")
+    section = _section(_report(out), "coadds")
+    assert "vacuum, barycentric" in section
+    assert "href='combined/TFG-42_SETUPA.fits'" in section
+    assert "1.120 ± 0.010" in section and "<tr class='warn'>" in section   # 12 % off 1
