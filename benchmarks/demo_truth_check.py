@@ -941,7 +941,8 @@ def check_combined(rep, truth, out_dir, log):
             rep.check_max("combined", item, f"S/N(coadd)/S/N(one) / sqrt({len(singles)}) - 1 (%)",
                           100 * abs(snr_one / np.sqrt(len(singles)) - 1), COADD_SNR_TARGET_PCT,
                           fmt="{:.2f}")
-    for row in [r for r in listing if r["kind"] == "coadd" and r["input_kind"] == "fluxed"]:
+    for row in [r for r in listing if r["kind"] in ("coadd", "single")
+                and r["input_kind"] == "fluxed"]:
         target = str(row["object"])
         tinfo = truth.index["targets"].get(target, {})
         if tinfo.get("kind") != "point":
@@ -961,7 +962,7 @@ def check_combined(rep, truth, out_dir, log):
         _, ratios = _binned_ratio(topo, flux, expected, ok, FLUX_BIN_ANGSTROM)
         rep.check_max("combined", item, "median coadd/true f_lambda - 1 (%)",
                       100 * (float(np.median(ratios)) - 1), COADD_FLUX_TARGET_PCT, fmt="{:+.2f}")
-    for row in [r for r in listing if r["kind"] in ("coadd", "splice")]:
+    for row in [r for r in listing if r["kind"] in ("coadd", "single", "splice")]:
         target = str(row["object"])
         tinfo = truth.index["targets"].get(target, {})
         if not tinfo.get("lines"):
@@ -969,7 +970,7 @@ def check_combined(rep, truth, out_dir, log):
         import astropy.units as u
         from specutils.utils.wcs_utils import air_to_vac
 
-        item = f"{target} {row['setup'] if row['kind'] == 'coadd' else 'spliced'}"
+        item = f"{target} {row['setup'] if row['kind'] != 'splice' else 'spliced'}"
         wave, flux, var, mask, hdr, frames = _read_combined(folder / str(row["file"]))
         if not str(hdr.get("CTYPE1", "")).startswith("WAVE") or hdr.get("SPECSYS") != "BARYCENT":
             rep.add("combined", item, "redshift", "product not vacuum/barycentric: not checked")

@@ -158,3 +158,18 @@ def test_combined_spectra_section_flags_a_splice_scale_off_one(tmp_path):
     assert "vacuum, barycentric" in section
     assert "href='combined/TFG-42_SETUPA.fits'" in section
     assert "1.120 ± 0.010" in section and "<tr class='warn'>" in section   # 12 % off 1
+
+
+def test_recorded_fallback_shows_in_its_setup_with_a_warning(tmp_path):
+    out = _out_dir(tmp_path)
+    (out / "calibration_choices").mkdir()
+    Table(rows=[("sci_002", "wavelength", "arc_009 (nearest other arc)", True,
+                 "arc_001 solution failed"),
+                ("sci_002", "flat", "master_flat_SETUPA", False, "")],
+          names=("frame", "calibration", "used", "fallback", "reason")).write(
+        out / "calibration_choices" / "sci_002.ecsv", format="ascii.ecsv")
+    text = _report(out)
+    summary = _section(text, "calibrations")
+    assert "arc_009 (nearest other arc)" in summary and "arc_001 solution failed" in summary
+    assert "master_flat_SETUPA" not in summary          # not a fallback: not listed
+    assert "1 calibration fallbacks" in text

@@ -204,7 +204,8 @@ def write_products(out_dir, results, splices, *, options):
                result.n_used, result.n_rejected,
                _frames_table(result.exposures, result.info["rejected_per_exposure"]), result.grid)
         plot_group(result, out_dir / f"{stem}_coadd.png")
-        rows.append((plan.object, plan.setup, f"{stem}.fits", "coadd", len(result.exposures),
+        rows.append((plan.object, plan.setup, f"{stem}.fits",
+                     "coadd" if len(result.exposures) > 1 else "single", len(result.exposures),
                      ",".join(plan.frames), plan.input_kind, result.unit,
                      result.info["snr_median"], result.info["n_rejected_total"], math.nan,
                      math.nan, plan.reason))

@@ -245,7 +245,8 @@ def _coadd_row(rel, row):
         scale = f"{float(row['splice_scale']):.3f} ± {float(row['splice_scale_err']):.3f}"
     snr = format_value(float(row["snr_median"])) if kind != "splice" else ""
     link = _link(str(Path(rel).parent / str(row["file"])), as_text(row["object"]))
-    return [link, where, kind, int(row["n_exposures"]), as_text(row["frames"]).replace(",", ", "),
+    shown = {"single": "one exposure"}.get(kind, kind)
+    return [link, where, shown, int(row["n_exposures"]), as_text(row["frames"]).replace(",", ", "),
             inputs, snr, int(row["n_rejected"]) if kind != "splice" else "", scale,
             as_text(row["note"])]
 
@@ -277,7 +278,8 @@ def _coadd_section(out_dir, manifest):
                             row_marks=marks, numeric=(3, 6, 7)))
     figures = [str(r["path"]) for r in manifest if r["kind"] == "qa_figure" and r["status"] == "ok"
                and Path(str(r["path"])).name.endswith("_coadd.png")]
-    parts.append(_thumbnails(figures))
+    parts.append("<p class='muted'>Each figure: the exposures and their combination; below, "
+                 "the exposures used and the pixels rejected.</p>" + _thumbnails(figures))
     parts.append("</section>")
     return "\n".join(parts)
 
@@ -297,14 +299,14 @@ def _thumbnails(figures):
 
 
 #: headings of the QA figures by what their names say (first match wins)
-_FIGURE_GROUPS = (("_coadd.png", "Combined spectra"), ("_wavelength_", "Wavelength solutions"),
+_FIGURE_GROUPS = (("_wavelength_", "Wavelength solutions"),
                   ("sensitivity_", "Sensitivity"), ("_fluxed", "Flux-calibrated spectra"),
                   ("_rectified", "Rectified frames"), ("_spectra", "Extracted spectra"))
 
 
 def _figures_section(manifest):
     figures = sorted(str(r["path"]) for r in manifest if r["kind"] == "qa_figure"
-                     and r["status"] == "ok")
+                     and r["status"] == "ok" and not str(r["path"]).endswith("_coadd.png"))
     if not figures:
         return ""
     parts = ["<section id='figures'><h2>QA figures</h2><p class='muted'>Click a thumbnail for "
