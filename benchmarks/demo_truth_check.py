@@ -892,6 +892,13 @@ def _to_topocentric_air(wave, hdr):
     return topo
 
 
+def _truth_is_vacuum_barycentric(truth):
+    """Whether the simulator defined its targets at vacuum wavelengths in the barycentric
+    frame (its index says so in 'wavelengths')."""
+    text = str(truth.index.get("wavelengths", ""))
+    return "vacuum" in text and "barycentric" in text
+
+
 def _astropy_v_bary(truth, target, date_avg):
     """Barycentric correction at the product's mid-exposure time, computed here with astropy
     from the truth's target coordinates and site (not from the product's header value)."""
@@ -949,7 +956,9 @@ def check_combined(rep, truth, out_dir, log):
             continue
         item = f"{target} {row['setup']} ({int(row['n_exposures'])} exp)"
         wave, flux, var, mask, hdr, _ = _read_combined(folder / str(row["file"]))
-        topo = _to_topocentric_air(wave, hdr)
+        # a truth defined in the barycentric frame at vacuum wavelengths is compared on the
+        # product's own axis; an older truth (air, topocentric) on the axis mapped back
+        topo = wave if _truth_is_vacuum_barycentric(truth) else _to_topocentric_air(wave, hdr)
         tw, tf = truth.spectrum(target)
         cum = np.concatenate([[0.0], np.cumsum(0.5 * (tf[1:] + tf[:-1]) * np.diff(tw))])
         e = _edges(topo)
@@ -976,16 +985,26 @@ def check_combined(rep, truth, out_dir, log):
             rep.add("combined", item, "redshift", "product not vacuum/barycentric: not checked")
             continue
         z_true = float(tinfo["redshift"])
-        # truth: observed(air, topocentric) = rest_air * (1 + z); unless the truth gives its
-        # own barycentric vacuum redshift, the expected barycentric z follows from astropy's
-        # correction at the product's time
         date_avg = str(hdr.get("DATE-AVG", frames["mid_exposure_utc"][0]))
         v_bary = _astropy_v_bary(truth, target, date_avg)
-        z_expect = float(tinfo.get("redshift_barycentric_vacuum",
-                                   (1 + z_true) * (1 + v_bary / C_KM_S) - 1))
-        vac_lines = [dict(ln, rest_wavelength_angstrom=float(air_to_vac(
-            ln["rest_wavelength_angstrom"] * u.AA, method="Ciddor1996",
-            scheme="iteration").to_value(u.AA))) for ln in tinfo["lines"]]
+        if _truth_is_vacuum_barycentric(truth):
+            # the truth's redshift is barycentric, its rest wavelengths vacuum
+            z_expect = z_true
+            vac_lines = [dict(ln, rest_wavelength_angstrom=ln["rest_wavelength_vacuum_angstrom"])
+                         for ln in tinfo["lines"]]
+        else:
+            # an older truth: observed(air, topocentric) = rest_air * (1 + z); the expected
+            # barycentric z follows from astropy's correction at the product's time
+            z_expect = (1 + z_true) * (1 + v_bary / C_KM_S) - 1
+            vac_lines = [dict(ln, rest_wavelength_angstrom=float(air_to_vac(
+                ln["rest_wavelength_angstrom"] * u.AA, method="Ciddor1996",
+                scheme="iteration").to_value(u.AA))) for ln in tinfo["lines"]]
+        per_frame = [(str(f), float(v), truth.frame(str(f)).get("v_bary_km_s"))
+                     for f, v in zip(frames["frame"], frames["v_corr_km_s"])]
+        known = [(v - t) for _, v, t in per_frame if t is not None]
+        if known:
+            rep.check_max("combined", item, "  v_corr of each input - truth v_bary (m/s)",
+                          1000 * max(known, key=abs), 1.0, chosen=True, fmt="{:+.3f}")
         good = (mask == 0) & (var > 0)
         norm = float(np.nanmedian(np.abs(flux[good]))) or 1.0   # the line fit works in O(1) units
         z, z_err, per = _redshift(wave, flux / norm, var / norm ** 2, good, vac_lines, z_expect)
