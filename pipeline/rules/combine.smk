@@ -7,7 +7,8 @@ rule combine_spectra:
     output:
         combined=directory(PLAN.out("combined")),
     params:
-        **PLAN.combine_params(),
+        site=PLAN.site(),
+        options=PLAN.section("combine"),
     log:
         PLAN.log("combine_spectra", "combine_spectra"),
     script:

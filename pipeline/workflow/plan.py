@@ -448,34 +448,14 @@ class NightPlan:
             for rec in self.night.frames("science", setup=setup):
                 files += self.fluxcal_products(rec.frame_id)
             files += self.sensitivity_products(setup)
-        files += self.combine_outputs()
+        files += [self.out("combined")] if self.targets() else []   # combine_spectra
         return list(dict.fromkeys(files))
 
-    # -- combined spectra (combine.smk; products owner) ------------------------------------
-    def combine_outputs(self):
-        """The combined-spectra folder, when the night has standards or science frames."""
-        return [self.out("combined")] if self.targets() else []
-
+    # -- combined spectra (combine.smk) --------------------------------------------------------
     def combine_inputs(self):
-        """Extracted spectra folders of every target frame, and the calibrated ones the
-        workflow makes (science frames; standards of setups with a sensitivity)."""
-        made = set(self._products_before_combine())
-        fluxed = [self.out("spectra_fluxed", f) for f in self.targets()
-                  if self.out("spectra_fluxed", f) in made]
-        return {"spectra": [self.out("spectra", f) for f in self.targets()], "fluxed": fluxed}
-
-    def combine_params(self):
-        """Params of ``combine_spectra``: the site and the ``combine`` section."""
-        return {"site": key_order_free(self.site()),
-                "options": key_order_free(self.config["combine"])}
-
-    def _products_before_combine(self):
-        files = []
-        for setup in self.night.setups():
-            for rec in self.night.frames("science", setup=setup):
-                files += self.fluxcal_products(rec.frame_id)
-            files += self.sensitivity_products(setup)
-        return files
+        """Extracted and (where the workflow makes them) calibrated spectra of every target."""
+        made = [f for f in self.reduction_products() if "/spectra_fluxed/" in f]
+        return {"spectra": [self.out("spectra", f) for f in self.targets()], "fluxed": made}
 
     def report_limits(self):
         """The configured limits the report marks each calibration against."""
