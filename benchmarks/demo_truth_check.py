@@ -513,11 +513,11 @@ def _truth_on_grid(model_rows, tw_rows, edges):
 
 
 def extraction_truth(truth, out_dir, fid, spec_path, conv=None):
-    """Per-bin truth for aperture 1 of a frame.
+    """Per-bin truth for the target of a frame.
 
     Returns a dict with the spectrum's arrays (flux, var, mask, box, boxvar, boxmask,
     trace, wave, header) and, when the truth image exists: ``truth_opt`` (rows with
-    ``|y - trace| <= APHWPX``, the optimal aperture), ``truth_box`` (fractional rows,
+    ``|y - trace| <= BOXHALFW``, the optimal aperture), ``truth_box`` (fractional rows,
     the boxcar aperture), ``truth_total`` (whole slit), the same ``*_c`` divided by the
     smooth flat convention ``conv`` (pipeline pixels), and ``sky_true_opt_c`` /
     ``sky_pipe_opt`` (true and subtracted sky in the optimal aperture) and
@@ -526,12 +526,12 @@ def extraction_truth(truth, out_dir, fid, spec_path, conv=None):
     with fits.open(spec_path) as h:
         hdr = h[0].header
         res = {"flux": h[0].data.astype(float), "var": h["VAR"].data.astype(float),
-               "mask": h["MASK"].data, "box": h["BOXFLUX"].data.astype(float),
-               "boxvar": h["BOXVAR"].data.astype(float), "boxmask": h["BOXMASK"].data,
+               "mask": h["MASK"].data, "box": h["SUMFLUX"].data.astype(float),
+               "boxvar": h["SUMVAR"].data.astype(float), "boxmask": h["SUMMASK"].data,
                "trace": h["TRACE"].data.astype(float), "header": hdr}
     wave = spectral_axis(hdr, res["flux"].size)
     res["wave"] = wave
-    hw = float(hdr["APHWPX"])
+    hw = float(hdr["BOXHALFW"])
     t = res["trace"][None, :]
     rect_path = Path(out_dir) / "rectified" / f"{fid}.fits"
     if rect_path.exists():
@@ -576,16 +576,16 @@ def extraction_truth(truth, out_dir, fid, spec_path, conv=None):
     return res
 
 
-def _ap1_file(folder):
-    files = sorted(Path(folder).glob("*_ap1.fits"))
+def _target_file(folder):
+    files = sorted(Path(folder).glob("*_target.fits"))
     return files[0] if files else None
 
 
 def extraction_cache(truth, out_dir, log, flat_conv):
-    """{frame: extraction_truth(...)} for aperture 1 of every standard/science frame."""
+    """{frame: extraction_truth(...)} for the target of every standard/science frame."""
     cache = {}
     for fid in _science_frames(truth, log):
-        spec = _ap1_file(Path(out_dir) / "spectra" / fid)
+        spec = _target_file(Path(out_dir) / "spectra" / fid)
         if spec is not None:
             setup = str(fits.getval(spec, "SETUP", ext=0))
             cache[fid] = extraction_truth(truth, out_dir, fid, spec, flat_conv.get(setup))
@@ -593,20 +593,20 @@ def extraction_cache(truth, out_dir, log, flat_conv):
 
 
 def check_sky_under_objects(rep, truth, cache):
-    """Sky subtracted under aperture 1 against the true sky there (truth images)."""
+    """Sky subtracted under the target against the true sky there (truth images)."""
     for fid, ex in cache.items():
         if "sky_true_opt_c" not in ex or "sky_pipe_opt" not in ex:
             continue
         good = (ex["mask"] == 0) & (ex["var"] > 0)
         ds = float(np.sum((ex["sky_pipe_opt"] - ex["sky_true_opt_c"])[good]))
         rep.add("sky", f"{fid} {truth.frame(fid).get('target', '?')}",
-                "under aperture 1: (sky subtracted - true) % of sky (% of object)",
+                "under the target: (sky subtracted - true) % of sky (% of object)",
                 f"{100 * ds / np.sum(ex['sky_true_opt_c'][good]):+.2f} "
                 f"({100 * ds / np.sum(ex['truth_opt_c'][good]):+.2f})")
 
 
 def check_extraction(rep, truth, out_dir, log, cache):
-    """Totals and chi2 of aperture 1 against the truth in the same aperture.
+    """Totals and chi2 of the target against the truth in the same aperture.
 
     The checks use the truth divided by the smooth flat convention (see check_flat);
     the raw comparison is shown as info.
@@ -616,7 +616,7 @@ def check_extraction(rep, truth, out_dir, log, cache):
         item = f"{fid} {target}"
         ex = cache.get(fid)
         if ex is None:
-            rep.missing("extraction", item, "spectrum *_ap1.fits", f"spectra/{fid}/")
+            rep.missing("extraction", item, "spectrum *_target.fits", f"spectra/{fid}/")
             continue
         if "truth_opt" not in ex:
             rep.add("extraction", item, "bias", "no truth image (model_<frame>.fits)")
@@ -643,7 +643,7 @@ def check_extraction(rep, truth, out_dir, log, cache):
             elif "boxvar_data" in ex:
                 gb = good & (ex["boxvar_data"] > 0)
                 bvd = ex["boxvar_data"]
-                rep.add("extraction", item, "  BOXVAR / sum(w^2 UNCERT of the rectified frame)",
+                rep.add("extraction", item, "  SUMVAR / sum(w^2 UNCERT of the rectified frame)",
                         float(np.median(v[gb] / bvd[gb])), "", "info", "{:.3f}")
                 rep.add("extraction", item, "  boxcar chi2/dof with sum(w^2 UNCERT) as variance",
                         float(np.mean((f[gb] - tru_c[gb]) ** 2 / bvd[gb])), "", "info", "{:.3f}")
@@ -665,7 +665,7 @@ def check_flux(rep, truth, out_dir, log, ext_cache):
     for fid in _science_frames(truth, log):
         fr = truth.frame(fid)
         target = fr.get("target")
-        spec = _ap1_file(Path(out_dir) / "spectra_fluxed" / fid)
+        spec = _target_file(Path(out_dir) / "spectra_fluxed" / fid)
         item = f"{fid} {target}"
         if spec is None:
             rep.missing("flux", item, "fluxed spectrum", f"spectra_fluxed/{fid}/")
@@ -727,25 +727,25 @@ def _slit_loss_rows(rep, truth, fid, item, hdr):
     """Profile FWHM and the slit fraction of the documented slit-loss model vs the truth.
 
     Model as documented in DEVELOPERS.md "Flux calibration": a centred Gaussian whose
-    FWHM is APFWHMPX less one pixel in quadrature, x BINSPAT x scale, at APREFWL, in a
+    FWHM is SPATFWHM less one pixel in quadrature, x BINSPAT x scale, at OBJREFWL, in a
     slit SLITWID wide. Truth: the frame's seeing (FWHM at 5000 A, ~ lambda^-0.2) and the
     slit_fraction column of truth/trace_<frame>.ecsv.
     """
     from scipy.special import erf
 
     fr = truth.frame(fid)
-    need = ("APFWHMPX", "APREFWL", "SLITWID")
+    need = ("SPATFWHM", "OBJREFWL", "SLITWID")
     trace_path = truth.dir / (fr.get("trace") or f"trace_{fid}.ecsv")
     if not all(k in hdr for k in need) or not trace_path.exists():
         return
     scale = float(truth.index["instrument"]["spatial_scale_arcsec_per_phys_px"])
     by = float(hdr.get("BINSPAT", truth.det["bin_y"]))
-    lam = float(hdr["APREFWL"])
+    lam = float(hdr["OBJREFWL"])
     see = float(fr["seeing_fwhm_arcsec_5000"]) * (lam / 5000.0) ** -0.2
     sig_rows = see / 2.3548 / (scale * by)
     fwhm_pix_true = 2.3548 * np.sqrt(sig_rows ** 2 + 1.0 / 12.0)   # Gaussian x pixel box
-    fw = float(hdr["APFWHMPX"])
-    rep.add("flux", item, "  APFWHMPX / true pixel-integrated FWHM - 1 (%)",
+    fw = float(hdr["SPATFWHM"])
+    rep.add("flux", item, "  SPATFWHM / true pixel-integrated FWHM - 1 (%)",
             100 * (fw / fwhm_pix_true - 1), "", "info", "{:+.2f}")
     model_fwhm = np.sqrt(max(fw ** 2 - 1.0, 1e-6)) * by * scale
     half = 0.5 * float(hdr["SLITWID"])
@@ -753,7 +753,7 @@ def _slit_loss_rows(rep, truth, fid, item, hdr):
     tr = Table.read(trace_path, format="ascii.ecsv")
     frac_true = float(np.interp(lam, np.asarray(tr["wavelength_angstrom"], float),
                                 np.asarray(tr["slit_fraction"], float)))
-    rep.add("flux", item, "  slit fraction at APREFWL: model / true - 1 (%)",
+    rep.add("flux", item, "  slit fraction at OBJREFWL: model / true - 1 (%)",
             f"{100 * (frac_model / frac_true - 1):+.2f} (model FWHM {model_fwhm:.3f}\" vs true "
             f"{see:.3f}\")")
 

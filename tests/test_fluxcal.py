@@ -850,16 +850,16 @@ def test_adapters_apply_the_slit_loss_model_from_profile_widths(tmp_path, standa
     Table({"wavelength_angstrom": table.wave_angstrom,
            "flux_erg_s_cm2_angstrom": table.flux}).write(table_path)
     common = dict(EXPTIME=120.0, AIRMASS=1.4, SETUP="A", SLITWID=1.2, BINSPAT=2,
-                  APREFWL=5000.0)
+                  OBJREFWL=5000.0)
     # profile FWHM of a pixel-integrated Gaussian: sqrt(image^2 + 8 ln2 / 12) px (analytic)
     def sampled(px):
         return math.sqrt(px ** 2 + 8 * math.log(2) / 12)
 
     write_test_spectrum(tmp_path / "std" / "TST-1_ap1.fits", WAVE, counts, var, OBJECT="TST-1",
-                        APFWHMPX=sampled(2.5), **common)  # 2.5 rows x 2 x 0.2" = 1.0"
+                        SPATFWHM=sampled(2.5), **common)  # 2.5 rows x 2 x 0.2" = 1.0"
     for name, fwhm_px in (("STAR", 3.0), ("GALAXY", 9.0)):
         write_test_spectrum(tmp_path / "sci" / f"{name}_ap1.fits", WAVE, counts, var,
-                            OBJECT=name, APFWHMPX=sampled(fwhm_px), **common)
+                            OBJECT=name, SPATFWHM=sampled(fwhm_px), **common)
     kw = dict(extinction_table=str(tug77[0]), spatial_scale_arcsec_per_px=0.2)
     steps.fit_sensitivity_file(spectra=[str(tmp_path / "std")], flux_tables=[str(table_path)],
                             sensitivity=str(tmp_path / "s.fits"), qa_table=str(tmp_path / "q.ecsv"),
@@ -889,7 +889,7 @@ def test_only_standard_name_cards_are_copied_to_calibrated_spectra(tmp_path, sta
     Table({"wavelength_angstrom": table.wave_angstrom,
            "flux_erg_s_cm2_angstrom": table.flux}).write(table_path)
     common = dict(EXPTIME=120.0, AIRMASS=1.4, SETUP="A", SLITWID=1.2, BINSPAT=2,
-                  APREFWL=5000.0, APFWHMPX=3.0)
+                  OBJREFWL=5000.0, SPATFWHM=3.0)
     write_test_spectrum(tmp_path / "std" / "TST-1_ap1.fits", WAVE, counts, var,
                         OBJECT="TST-1", **common)
     kw = dict(extinction_table=str(tug77[0]), spatial_scale_arcsec_per_px=0.2)

@@ -45,7 +45,7 @@ def _write(path, grid, rng):
 def test_specutils_round_trip(tmp_path, rng, log):
     grid = (WavelengthGrid(4089.72, 1.97, 1025) if not log
             else WavelengthGrid(4089.72, 1.97 / 5000.0, 1025, log=True))
-    path = tmp_path / "TRV-9_ap1.fits"
+    path = tmp_path / "TRV-9_target.fits"
     flux, var, mask = _write(path, grid, rng)
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # the reader must not need to guess anything
@@ -65,6 +65,18 @@ def test_specutils_round_trip(tmp_path, rng, log):
     box = read_spectrum(path, method="boxcar")
     np.testing.assert_allclose(box.flux, (flux * 1.01).astype(np.float32))
     np.testing.assert_allclose(box.wave_angstrom, grid.centres_angstrom())
+    # the boxcar sum through specutils too: its variance HDU carries the uncertainty class
+    with fits.open(path) as hdul:
+        assert [h.name for h in hdul][:6] == ["FLUX", "VAR", "MASK", "SUMFLUX", "SUMVAR",
+                                                 "SUMMASK"]
+        assert hdul["VAR"].header["UTYPE"] == hdul["SUMVAR"].header["UTYPE"] \
+            == "VarianceUncertainty"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        spec_box = specutils.Spectrum.read(path, format="wcs1d-fits", hdu="SUMFLUX",
+                                           uncertainty_hdu="SUMVAR", uncertainty_type="var",
+                                           mask_hdu="SUMMASK")
+    np.testing.assert_allclose(spec_box.uncertainty.array, (var * 1.1).astype(np.float32))
 
 
 def test_missing_hdu_is_named(tmp_path, rng):
@@ -72,8 +84,8 @@ def test_missing_hdu_is_named(tmp_path, rng):
     path = tmp_path / "x.fits"
     _write(path, grid, rng)
     with fits.open(path) as hdul:
-        fits.HDUList([h for h in hdul if h.name != "BOXVAR"]).writeto(tmp_path / "y.fits")
-    with pytest.raises(InputFileError, match="HDU BOXVAR missing"):
+        fits.HDUList([h for h in hdul if h.name != "SUMVAR"]).writeto(tmp_path / "y.fits")
+    with pytest.raises(InputFileError, match="HDU SUMVAR missing"):
         read_spectrum(tmp_path / "y.fits", method="boxcar")
 
 
@@ -92,7 +104,10 @@ def test_sanitised_names(raw, expected):
     assert name == expected
     assert "/" not in name and "\\" not in name and not name.startswith(".")
     assert all(ch.isprintable() for ch in name)
-    assert spectrum_file_name(raw, 2) == f"{expected}_ap2.fits"
+    assert spectrum_file_name(raw, "other2") == f"{expected}_other2.fits"
+    assert spectrum_file_name(raw, "target") == f"{expected}_target.fits"
+    with pytest.raises(ValueError, match="label"):
+        spectrum_file_name(raw, "ap1")
 
 
 # ----------------------------------------------------------------- the rule's adapter on files
@@ -137,19 +152,22 @@ def test_adapter_writes_readable_products(tmp_path):
                                  frame_type="science", setup="G600_t08.93_s1.2_2x2_NONE",
                                  spatial_scale_arcsec_per_px=0.2, **outs)
     listing = Table.read(outs["spectra"] + "/extraction.ecsv", format="ascii.ecsv")
-    assert list(listing["file"]) == ["TRV_9_faint_ap1.fits"]
-    path = outs["spectra"] + "/TRV_9_faint_ap1.fits"
+    assert list(listing["file"]) == ["TRV_9_faint_target.fits"]
+    assert list(listing["role"]) == ["target"] and list(listing["label"]) == ["target"]
+    path = outs["spectra"] + "/TRV_9_faint_target.fits"
     spec = specutils.Spectrum.read(path)
     header = spec.meta["header"]
     for key in REQUIRED_KEYWORDS:
         assert key in header, key
     assert header["SETUP"] == "G600_t08.93_s1.2_2x2_NONE" and header["FRAMEID"] == "rls_9016"
     assert header["OBJECT"] == "TRV 9/faint"
-    assert header["NOBJECTS"] == 1 and "APNUM" not in header   # simulator truth: one star
+    assert header["NOBJECTS"] == 1                           # simulator truth: one star
     assert header["INPUT01"] == "frame.fits" and header["CALIB01"] == "arc_solution.fits"
     assert header["PIPEVERS"] and header["CFGHASH"]
     assert header["FLEXPIX"] == pytest.approx(0.2, abs=0.03)  # simulator truth 0.2 px
-    assert header["APCENAS"] == pytest.approx((header["APCENPX"] - 127.5) * 0.4, abs=1e-3)
+    assert header["OBJPOSAS"] == pytest.approx((header["OBJPOSPX"] - 127.5) * 0.4, abs=1e-3)
+    assert header["OBJROLE"] == "target" and header["OBJLABEL"] == "target"
+    assert not [k for k in header if k.startswith("AP")]  # none of the old card family
     # the product's flux against simulator truth (electrons per spectral pixel)
     truth = _truth_on_grid(f["truth"], red.reduction.rectified.grid)
     good = (np.asarray(spec.mask) == 0) & np.isfinite(truth)

@@ -1,11 +1,14 @@
 """The 1-D spectrum product: one FITS file per exposure and object.
 
 Written by the extraction step into ``spectra/{frame}/`` below the output
-folder, one file per traced object, named ``{OBJECT}_ap{n}.fits`` from the
-sanitised OBJECT keyword (:func:`sanitise_name`) and the aperture number
-``n`` (1 = highest signal-to-noise object on the slit, usually the target;
-then in decreasing S/N). The same folder holds ``extraction.ecsv``, the
-listing of what was written (:data:`LISTING_COLUMNS`).
+folder, one file per object on the slit, named from the sanitised OBJECT keyword
+(:func:`sanitise_name`) and the object's label (:func:`spectrum_file_name`):
+``{OBJECT}_target.fits`` for the target (the object nearest the expected slit
+position, ``tracing.target_offset_arcsec`` or ``tracing.target_offset_keyword``),
+``{OBJECT}_other1.fits``, ``{OBJECT}_other2.fits``... for the other objects on
+the slit, in decreasing detection S/N. The same folder holds ``extraction.ecsv``,
+the listing of what was written (:data:`LISTING_COLUMNS`; its meta lists the
+candidates that were found not to be sources, with the reason).
 
 Reading
 -------
@@ -36,9 +39,9 @@ HDU       type    content
 0 FLUX    image   optimal extraction (Horne 1986), float32, BUNIT electron; header
 1 VAR     image   variance of FLUX, float32, electron² (``UTYPE='VarianceUncertainty'``)
 2 MASK    image   uint8 mask bits of FLUX
-3 BOXFLUX image   boxcar extraction, float32, electron (same grid and WCS)
-4 BOXVAR  image   variance of BOXFLUX, electron²
-5 BOXMASK image   uint8 mask bits of BOXFLUX
+3 SUMFLUX image   boxcar sum over the aperture, float32, electron (same grid and WCS)
+4 SUMVAR  image   variance of SUMFLUX, electron² (``UTYPE='VarianceUncertainty'``)
+5 SUMMASK image   uint8 mask bits of SUMFLUX
 6 SKY     image   sky model summed over the boxcar aperture, electron (what was subtracted)
 7 TRACE   image   trace centre per pixel, float32, rows of the rectified frame (0-based)
 ========= ======= ==================================================================
@@ -60,16 +63,18 @@ Written by the extraction:
 ``SETUP``    setup id of the inventory (e.g. ``G600_t08.93_s1.2_2x2_NONE``)
 ``FRAMEID``  frame id of the exposure
 ``FRAMETYP`` ``standard`` or ``science``
-``APERTURE`` aperture number on the slit (1 = highest S/N)
+``OBJROLE``  ``target`` or ``other`` (another object on the slit)
+``OBJLABEL`` ``target``, ``other1``, ``other2``... (the label of the file name)
 ``NOBJECTS`` number of objects traced on this frame
-``APCENPX``  trace centre at the reference wavelength, row of the rectified frame
-``APCENAS``  same, arcsec along the slit from the slit centre
-``APREFWL``  reference wavelength of APCENPX, Angstrom
-``APHWPX``   boxcar half width, rows
-``APFWHMPX`` spatial FWHM of the profile, rows
+``EXPECTAS`` where the target was expected, arcsec along the slit from its centre
+``OBJPOSPX`` trace centre at the reference wavelength, row of the rectified frame
+``OBJPOSAS`` same, arcsec along the slit from the slit centre
+``OBJREFWL`` reference wavelength of OBJPOSPX, Angstrom
+``BOXHALFW`` boxcar half width, rows
+``SPATFWHM`` spatial FWHM of the profile, rows
 ``TRCMODE``  ``own`` (fitted), ``reference`` (shape of a bright reference trace,
              offset fitted; ``TRCREF`` names the reference frame) or ``fixed``
-``EXTMETH``  ``optimal`` (HDU 0) ; boxcar in HDU 3
+``EXTMETH``  ``optimal`` (HDU 0) ; boxcar sum in HDU 3 (SUMFLUX)
 ``SNRMED``   median S/N per pixel of FLUX over good pixels
 ``NREJECT``  pixels rejected in the profile fit
 ``FLEXPIX``  flexure shift applied, pixels along the dispersion (+ = features
@@ -99,7 +104,8 @@ from pipeline.core.maskbits import MASK_DTYPE
 from pipeline.core.grid import WavelengthGrid
 
 __all__ = ["Spectrum1D", "sanitise_name", "spectrum_file_name", "write_spectrum",
-           "read_spectrum", "LISTING_COLUMNS", "COPIED_KEYWORDS", "REQUIRED_KEYWORDS"]
+           "read_spectrum", "LISTING_COLUMNS", "COPIED_KEYWORDS", "REQUIRED_KEYWORDS",
+           "EXTENSIONS"]
 
 #: keywords copied from the calibrated frame when present
 COPIED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "GRATING", "GRTILT",
@@ -107,11 +113,14 @@ COPIED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "GRA
 
 #: keywords every product header carries (the flux calibration relies on them)
 REQUIRED_KEYWORDS = ("OBJECT", "EXPTIME", "AIRMASS", "DATE-OBS", "RA", "DEC", "SETUP", "FRAMEID",
-                     "APERTURE", "APCENPX", "APCENAS")
+                     "OBJROLE", "OBJLABEL", "OBJPOSPX", "OBJPOSAS")
 
 #: columns of the per-frame listing ``spectra/{frame}/extraction.ecsv``
-LISTING_COLUMNS = ("frame_id", "object", "aperture", "file", "trace_px", "trace_arcsec",
+LISTING_COLUMNS = ("frame_id", "object", "role", "label", "file", "trace_px", "trace_arcsec",
                    "fwhm_px", "trace_mode", "snr_median", "flux_total_e", "status")
+
+#: HDU names of the two extractions: (flux, variance, mask)
+EXTENSIONS = {"optimal": ("FLUX", "VAR", "MASK"), "boxcar": ("SUMFLUX", "SUMVAR", "SUMMASK")}
 
 _UNSAFE = re.compile(r"[^A-Za-z0-9.+_-]+")
 
@@ -138,9 +147,18 @@ def sanitise_name(text, *, fallback="unnamed"):
     return cleaned
 
 
-def spectrum_file_name(object_name, aperture):
-    """File name of one product: ``{sanitised OBJECT}_ap{aperture}.fits``."""
-    return f"{sanitise_name(object_name)}_ap{int(aperture)}.fits"
+def spectrum_file_name(object_name, label):
+    """File name of one product: ``{sanitised OBJECT}_{label}.fits``.
+
+    Examples
+    --------
+    >>> spectrum_file_name("TRG 511", "target"), spectrum_file_name("TRG 511", "other1")
+    ('TRG_511_target.fits', 'TRG_511_other1.fits')
+    """
+    label = str(label)
+    if label != "target" and not (label.startswith("other") and label[5:].isdigit()):
+        raise ValueError(f"`label` must be 'target' or 'other<k>', got {label!r}")
+    return f"{sanitise_name(object_name)}_{label}.fits"
 
 
 @dataclass(frozen=True)
@@ -219,13 +237,15 @@ def write_spectrum(path, grid, header, *, flux, variance, mask, boxcar_flux, box
     primary = fits.PrimaryHDU(np.asarray(flux, dtype=np.float32), header=hdr0)
     var = _image(variance, "VAR", grid, dtype=np.float32, bunit=f"({unit})2")
     var.header["UTYPE"] = ("VarianceUncertainty", "astropy.nddata uncertainty class")
+    box_var = _image(boxcar_variance, "SUMVAR", grid, dtype=np.float32, bunit=f"({unit})2")
+    box_var.header["UTYPE"] = ("VarianceUncertainty", "astropy.nddata uncertainty class")
     hdus = [
         primary, var,
         _image(mask, "MASK", grid, dtype=MASK_DTYPE, comment="bits of pipeline.core.maskbits; 0 = good"),
-        _image(boxcar_flux, "BOXFLUX", grid, dtype=np.float32, bunit=unit,
-               comment="boxcar extraction"),
-        _image(boxcar_variance, "BOXVAR", grid, dtype=np.float32, bunit=f"({unit})2"),
-        _image(boxcar_mask, "BOXMASK", grid, dtype=MASK_DTYPE),
+        _image(boxcar_flux, "SUMFLUX", grid, dtype=np.float32, bunit=unit,
+               comment="boxcar sum over the aperture"),
+        box_var,
+        _image(boxcar_mask, "SUMMASK", grid, dtype=MASK_DTYPE),
         _image(sky, "SKY", grid, dtype=np.float32, bunit=unit,
                comment="sky model summed over the boxcar aperture"),
         _image(trace_px, "TRACE", grid, dtype=np.float32, bunit="pixel",
@@ -253,7 +273,7 @@ def read_spectrum(path, *, method="optimal"):
     InputFileError
         When an HDU is missing or the wavelength WCS is unreadable.
     """
-    names = {"optimal": ("FLUX", "VAR", "MASK"), "boxcar": ("BOXFLUX", "BOXVAR", "BOXMASK")}
+    names = EXTENSIONS
     if method not in names:
         raise ValueError(f"`method` must be 'optimal' or 'boxcar', got {method!r}")
     path = Path(path)

@@ -29,8 +29,8 @@ from scipy.signal import find_peaks
 from pipeline.core.errors import ExtractionError
 from pipeline.core.maskbits import MaskBit
 
-__all__ = ["Detection", "spatial_profile", "find_objects", "crude_sky", "object_mask",
-           "FWHM_PER_SIGMA"]
+__all__ = ["Detection", "CandidateReview", "spatial_profile", "find_objects",
+           "review_candidates", "crude_sky", "object_mask", "FWHM_PER_SIGMA"]
 
 #: FWHM of a Gaussian in units of its sigma
 FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
@@ -237,6 +237,123 @@ def find_objects(profile, *, fwhm_guess_px=3.0, snr_min=5.0, max_objects=10,
                for k in kept):
             kept.append(d)
     return kept[:max_objects]
+
+
+@dataclass(frozen=True)
+class CandidateReview:
+    """Which detected candidates are sources (:func:`review_candidates`).
+
+    Attributes
+    ----------
+    objects : list of Detection
+        Candidates kept, in the order given.
+    rejected : list of (Detection, str)
+        Candidates that are not sources, with the reason.
+    residual_level : float
+        Depth of the deepest negative structure of the smoothed profile below its
+        median (same units as the profile): the level of the sky-fit residuals.
+    noise : float
+        Robust noise of the smoothed profile.
+    seeing_px : float
+        FWHM (rows) a point source has on this frame.
+    """
+
+    objects: list
+    rejected: list
+    residual_level: float
+    noise: float
+    seeing_px: float
+
+
+def review_candidates(profile, candidates, *, fwhm_guess_px=3.0, residual_factor=1.5,
+                      min_fwhm_seeing=0.5, edge_px=2):
+    """Keep the candidates that are sources, reject the structures of the sky fit.
+
+    Parameters
+    ----------
+    profile : ndarray, shape (ny,)
+        Sky-subtracted collapsed profile the candidates were found in.
+    candidates : list of Detection
+        From :func:`find_objects`, highest S/N first.
+    fwhm_guess_px : float
+        Expected seeing FWHM, rows (the matched filter of the detection).
+    residual_factor : float
+        A source must peak above this many times the depth of the deepest negative
+        structure of the smoothed profile (0 = no such test).
+    min_fwhm_seeing : float
+        A source is at least this fraction of the seeing wide (0 = no such test).
+    edge_px : int
+        Rows at each slit end left out of the residual level.
+
+    Returns
+    -------
+    CandidateReview
+
+    Notes
+    -----
+    No source is negative: negative structure of the smoothed, sky-subtracted
+    profile outside the objects is sky-fit residual (slit-illumination errors,
+    slit defects the illumination spline cannot follow) or noise, and positive
+    residual structure of the same kind reaches about the same height. A candidate
+    that does not rise above ``residual_factor`` times the deepest negative
+    structure cannot be told from the residuals, whatever its S/N against the
+    pixel noise. Light from the sky is blurred by the seeing before it enters the
+    slit, so no source is narrower than the seeing; narrower structures are
+    defects of the slit or the detector. The seeing is the FWHM of the brightest
+    candidate that passes the first test, at most ``fwhm_guess_px`` (an extended
+    brightest object does not widen it).
+
+    Examples
+    --------
+    >>> y = np.arange(120.0)
+    >>> prof = 80 * np.exp(-0.5 * ((y - 40) / 1.3) ** 2) + np.random.default_rng(2).normal(0, 1, 120)
+    >>> prof[90:92] += 12.0   # a defect two rows wide
+    >>> found = find_objects(prof, fwhm_guess_px=3.0)
+    >>> [round(d.position_px) for d in found]
+    [40, 90]
+    >>> review = review_candidates(prof, found, fwhm_guess_px=3.0)
+    >>> [round(d.position_px) for d in review.objects], review.rejected[0][1][:20]
+    ([40], 'narrower than the se')
+    """
+    prof = np.asarray(profile, float)
+    sigma_f = max(fwhm_guess_px / _FWHM_PER_SIGMA, 0.5)
+    smooth = gaussian_filter1d(prof, sigma_f, mode="nearest")
+    rows = np.arange(prof.size)
+    objects_rows = np.zeros(prof.size, bool)
+    pad = int(np.ceil(fwhm_guess_px))
+    for d in candidates:
+        lo, hi = int(np.floor(d.extent_px[0])), int(np.ceil(d.extent_px[1]))
+        objects_rows[max(lo - pad, 0):hi + pad + 1] = True
+    free = ~objects_rows
+    edge = int(edge_px) + pad
+    free[:edge] = False
+    free[max(prof.size - edge, 0):] = False
+    if free.sum() < 5:
+        free = ~objects_rows if (~objects_rows).sum() >= 5 else np.ones(prof.size, bool)
+    level = float(np.median(smooth[free]))
+    noise = robust_sigma(smooth[free]) or float(np.std(smooth[free])) or 1.0
+    residual = max(level - float(np.min(smooth[free])), 0.0)
+    kept, rejected = [], []
+    for d in candidates:
+        height = float(smooth[int(np.clip(round(d.position_px), 0, prof.size - 1))] - level)
+        if residual_factor > 0 and height <= residual_factor * residual:
+            rejected.append((d, f"not above the sky-fit residuals: peak {height:.3g} <= "
+                                f"{residual_factor:g} x the deepest negative structure "
+                                f"{residual:.3g} (rows {int(rows[free][0])}-"
+                                f"{int(rows[free][-1])})"))
+        else:
+            kept.append(d)
+    seeing = float(fwhm_guess_px)
+    if kept:
+        seeing = min(seeing, float(kept[0].fwhm_px))
+    real = []
+    for d in kept:
+        if min_fwhm_seeing > 0 and d.fwhm_px < min_fwhm_seeing * seeing:
+            rejected.append((d, f"narrower than the seeing: FWHM {d.fwhm_px:.2f} rows < "
+                                f"{min_fwhm_seeing:g} x {seeing:.2f}"))
+        else:
+            real.append(d)
+    return CandidateReview(real, rejected, residual, noise, seeing)
 
 
 # -- object mask on the native frame --------------------------------------------------

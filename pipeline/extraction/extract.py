@@ -56,6 +56,14 @@ The sky model's own error is common to all rows at one wavelength; it is
 added as a fully correlated term ``(Σ_i w_ij s_ij)²`` (``w`` the extraction
 weights, ``s`` the model's standard deviation) to both extractions.
 
+A relative error common to all rows of a column's aperture (``systematic_fraction``,
+config ``extraction.systematic_fraction``) is added as ``(fraction * flux)**2`` to both
+variances: per-pixel noise models treat the flat field's pixels as independent, so
+structure of the flat along the slit (slit-width ripples the slit-illumination fit
+leaves in the pixel response, e.g.) does not average down over the aperture's rows
+and shows at high S/N. It is common to neighbouring columns as well (an error of the
+flux scale of the spectrum), so it does not average down along the dispersion either.
+
 Masks of the extracted spectra: a column whose masked pixels carry more than
 ``max_masked_profile`` of the profile (or whose SATURATED pixels carry more
 than ``max_saturated_profile``) gets the OR of their bits; columns without
@@ -239,7 +247,8 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
             signal_variance_factor=None, signal_variance_quadratic=None, sky=None,
             sky_variance=None, profile_knot_px=0.5,
             profile_wave_order=2, profile_smooth_px=31, reject_sigma=5.0, max_iterations=20,
-            profile_error_fraction=0.02, max_masked_profile=0.5, max_saturated_profile=0.05):
+            profile_error_fraction=0.02, max_masked_profile=0.5, max_saturated_profile=0.05,
+            systematic_fraction=0.0):
     """Boxcar and optimal extraction of one object.
 
     Parameters
@@ -285,6 +294,10 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     max_saturated_profile : float
         Columns whose SATURATED pixels carry more of the profile are flagged
         (stricter: a saturated core rebuilt from the wings is off by percents).
+    systematic_fraction : float
+        Relative error common to all pixels of a column's aperture (flat-field
+        structure along the slit, profile-model error): ``(systematic_fraction *
+        flux)**2`` is added to both variances (module notes).
 
     Returns
     -------
@@ -386,7 +399,7 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     var_pix = np.sum(np.where(use, weights ** 2 * np.where(np.isfinite(var_r), var_r, 0.0), 0.0),
                      axis=0)
     var_sky = np.sum(weights * sky_err, axis=0) ** 2
-    opt_var = var_pix + var_sky
+    opt_var = var_pix + var_sky + (systematic_fraction * flux) ** 2
 
     # boxcar with masked pixels replaced by the profile model
     model = flux[None, :] * prof
@@ -394,7 +407,8 @@ def extract(data, variance, mask, trace_px, *, half_width_px, background_varianc
     box_flux = np.sum(boxw * filled, axis=0)
     box_pix_var = var_r if use_model else np.where(np.isfinite(pix_var), pix_var, 0.0)
     box_pix_var = np.where(np.isfinite(box_pix_var), box_pix_var, 0.0)
-    box_var = np.sum(boxw ** 2 * box_pix_var, axis=0) + np.sum(boxw * sky_err, axis=0) ** 2
+    box_var = (np.sum(boxw ** 2 * box_pix_var, axis=0) + np.sum(boxw * sky_err, axis=0) ** 2
+               + (systematic_fraction * box_flux) ** 2)
     sky_sum = (np.zeros(n) if sky is None else np.sum(boxw * np.asarray(sky, float), axis=0))
 
     # masks of the spectra

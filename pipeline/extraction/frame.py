@@ -14,13 +14,14 @@ The option dictionaries are the config sections; their defaults
 """
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from pipeline.core.checks import as_2d, merge_options, same_shape
 from pipeline.core.errors import ConfigError
 from pipeline.core.maskbits import MASK_DTYPE
+from pipeline.extraction import detect
 from pipeline.extraction import flexure as flx
 from pipeline.extraction import rectify as rct
 from pipeline.extraction import sky as sky_mod
@@ -29,7 +30,9 @@ from pipeline.extraction.detect import object_mask
 from pipeline.extraction.extract import extract
 from pipeline.extraction.variance import flat_term_by_column, variance_model_coefficients
 
-__all__ = ["FrameReduction", "reduce_frame", "aperture_half_widths", "RECTIFICATION_DEFAULTS",
+__all__ = ["FrameReduction", "ObjectsOnSlit", "reduce_frame", "extract_objects",
+           "aperture_half_widths", "choose_target", "extracted_snr", "sky_fraction",
+           "extraction_verdicts", "object_order", "RECTIFICATION_DEFAULTS",
            "FLEXURE_DEFAULTS", "SKY_DEFAULTS", "TRACING_DEFAULTS", "EXTRACTION_DEFAULTS"]
 
 #: Defaults of the config sections (the values of config/schema.yaml; tests/test_extract.py checks)
@@ -44,11 +47,15 @@ SKY_DEFAULTS = {"knot_spacing_px": 0.6, "spatial_order": 0, "fit_illumination": 
                 "object_pad_fwhm": 1.5}
 TRACING_DEFAULTS = {"fwhm_guess_arcsec": 1.2, "snr_min": 5.0, "max_objects": 5,
                     "own_trace_snr": 30.0, "n_bins": 24, "order": 3, "reject_sigma": 3.0,
-                    "min_bin_snr": 5.0, "use_standard_reference": True}
+                    "min_bin_snr": 5.0, "use_standard_reference": True,
+                    "residual_factor": 1.5, "min_fwhm_seeing": 0.5, "min_extracted_snr": 2.5,
+                    "max_sky_fraction": 0.5,
+                    "target_offset_arcsec": 0.0, "target_offset_keyword": None}
 EXTRACTION_DEFAULTS = {"aperture_fwhm": 1.5, "min_half_width_px": 3.0, "profile_knot_px": 0.5,
                        "profile_wave_order": 2, "profile_smooth_px": 31, "reject_sigma": 5.0,
                        "max_iterations": 20, "profile_error_fraction": 0.02,
-                       "max_masked_profile": 0.5, "max_saturated_profile": 0.05}
+                       "max_masked_profile": 0.5, "max_saturated_profile": 0.05,
+                       "systematic_fraction": 0.0}
 
 
 @dataclass(frozen=True)
@@ -76,9 +83,16 @@ class FrameReduction:
     flexure : pipeline.extraction.flexure.FlexureResult
     sky_info : dict
     traces : list of pipeline.extraction.trace.Trace
-        Aperture 1 first.
+        The target first (when there is an object), then the other objects on the
+        slit by decreasing detection S/N.
     half_widths_px : list of float
     extractions : list of Extraction
+    roles : tuple of str
+        ``'target'`` or ``'other'``, one per trace.
+    objects_info : dict
+        ``expected_target_row_px``, ``residual_level`` and ``profile_noise`` (of the
+        collapsed profile), ``seeing_px``, ``not_sources`` (one dict per candidate
+        that is not a source: ``row_px``, ``snr``, ``fwhm_px``, ``reason``).
     """
 
     rectified: object
@@ -94,6 +108,8 @@ class FrameReduction:
     traces: list
     half_widths_px: list
     extractions: list
+    roles: tuple = ()
+    objects_info: dict = field(default_factory=dict)
 
 
 def aperture_half_widths(traces, *, aperture_fwhm, min_half_width_px):
@@ -120,9 +136,113 @@ def aperture_half_widths(traces, *, aperture_fwhm, min_half_width_px):
     return half
 
 
+def _candidate_row(detection, reason):
+    return {"row_px": float(detection.position_px), "snr": float(detection.snr),
+            "fwhm_px": float(detection.fwhm_px), "reason": reason}
+
+
+def choose_target(positions_px, expected_px):
+    """Index of the target: the object nearest the expected slit position (None if none).
+
+    Examples
+    --------
+    >>> choose_target([180.0, 104.0, 40.0], 110.0)
+    1
+    >>> choose_target([], 110.0) is None
+    True
+    """
+    positions = np.asarray(positions_px, float)
+    if positions.size == 0:
+        return None
+    return int(np.argmin(np.abs(positions - float(expected_px))))
+
+
+def extracted_snr(extraction):
+    """Total S/N of an extracted spectrum: sum of the good fluxes / sqrt(sum of variances)."""
+    good = (extraction.mask == 0) & (extraction.variance > 0)
+    if not good.any():
+        return 0.0
+    return float(np.sum(extraction.flux[good]) / np.sqrt(np.sum(extraction.variance[good])))
+
+
+def sky_fraction(extraction, *, n_continuum=4):
+    """Share of an extracted spectrum that has the spectrum of the night sky, and its S/N.
+
+    The flux is fitted as ``alpha * sky + c(lambda)`` (``sky``: the sky model summed over
+    the aperture; ``c``: Legendre polynomial of ``n_continuum`` terms) by weighted least
+    squares; the night-sky lines pin ``alpha``. Returns ``(alpha * sum(sky) / sum(flux),
+    alpha / sigma(alpha))`` over the good pixels ((0, 0) when it cannot be fitted).
+
+    Notes
+    -----
+    Light that varies from row to row in proportion to the sky (slit-illumination errors,
+    slit defects the sky model does not follow) comes out of an extraction with the sky's
+    spectrum, lines included; a source's own spectrum does not follow the sky lines.
+    """
+    from numpy.polynomial import legendre
+
+    good = (extraction.mask == 0) & (extraction.variance > 0) & np.isfinite(extraction.flux)
+    sky = np.asarray(extraction.sky, float)
+    if good.sum() < n_continuum + 10 or not np.any(sky[good] > 0):
+        return 0.0, 0.0
+    u = np.linspace(-1.0, 1.0, sky.size)[good]
+    design = np.column_stack([sky[good], legendre.legvander(u, n_continuum - 1)])
+    w = 1.0 / np.sqrt(extraction.variance[good])
+    coef, *_ = np.linalg.lstsq(design * w[:, None], extraction.flux[good] * w, rcond=None)
+    try:
+        cov = np.linalg.inv((design * w[:, None]).T @ (design * w[:, None]))
+    except np.linalg.LinAlgError:
+        return 0.0, 0.0
+    total = float(np.sum(extraction.flux[good]))
+    alpha, err = float(coef[0]), float(np.sqrt(max(cov[0, 0], 0.0)))
+    share = alpha * float(np.sum(sky[good])) / total if total > 0 else np.inf
+    return share, (alpha / err if err > 0 else 0.0)
+
+
+def extraction_verdicts(extractions, target, *, min_extracted_snr, max_sky_fraction,
+                        min_sky_snr=3.0):
+    """Why each extracted object other than the target is not a source ('' = it is one).
+
+    An object detected above the threshold whose extracted spectrum has a total S/N below
+    ``min_extracted_snr`` contradicts its detection; one whose light is mostly the night
+    sky's spectrum (:func:`sky_fraction` above ``max_sky_fraction``, its coefficient
+    detected at ``min_sky_snr``) is a sky-fit residual. The target is always kept.
+    """
+    out = []
+    for i, ex in enumerate(extractions):
+        reason = ""
+        if i != target:
+            snr = extracted_snr(ex)
+            share, share_snr = sky_fraction(ex)
+            if snr < min_extracted_snr:
+                reason = (f"extracted spectrum total S/N {snr:.1f} < {min_extracted_snr:g} "
+                          "contradicts its detection")
+            elif share > max_sky_fraction and share_snr >= min_sky_snr:
+                reason = (f"{100 * share:.0f} % of its light has the night sky's spectrum "
+                          f"(> {100 * max_sky_fraction:.0f} %): a sky-fit residual")
+        out.append(reason)
+    return out
+
+
+def object_order(traces, target, keep):
+    """Indices of the objects kept, the target first, then by decreasing detection S/N.
+
+    Examples
+    --------
+    >>> from pipeline.extraction.trace import fixed_trace
+    >>> tr = [fixed_trace([4e3, 5e3], y, 3.0, snr) for y, snr in ((10, 90.), (50, 20.), (90, 40.))]
+    >>> object_order(tr, 1, [True, True, True])
+    [1, 0, 2]
+    """
+    others = sorted((i for i in range(len(traces)) if i != target and keep[i]),
+                    key=lambda i: -traces[i].snr)
+    return ([target] if target is not None else []) + others
+
+
 def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_species=None,
                  spatial_scale_arcsec_per_px=0.4, reference_trace=None, reference_name="",
-                 rectification=None, flexure=None, sky=None, tracing=None, extraction=None):
+                 target_offset_arcsec=None, rectification=None, flexure=None, sky=None,
+                 tracing=None, extraction=None):
     """Rectify, correct flexure, subtract the sky, trace and extract one frame.
 
     Parameters
@@ -141,6 +261,9 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
     reference_trace : pipeline.extraction.trace.Trace, optional
         Bright reference whose shape faint objects borrow.
     reference_name : str
+    target_offset_arcsec : float, optional
+        Expected position of the target along the slit, arcsec from the slit
+        centre (default: ``tracing['target_offset_arcsec']``).
     rectification, flexure, sky, tracing, extraction : dict, optional
         Options of the config sections (defaults: ``*_DEFAULTS`` of this module, the schema's).
 
@@ -223,28 +346,126 @@ def reduce_frame(data, variance, mask, wave_map, *, line_wave_angstrom=(), line_
     for arr in (sky_r, sky_err_r, bkg_r, gfac, qfac):
         arr[~wts.covered] = 0.0
 
-    wave_grid = grid.centres_angstrom()
-    traces = trc.trace_frame(rect.data, rect.variance, rect.mask, wave_grid,
-                             fwhm_guess_px=fwhm_px, snr_min=to["snr_min"],
-                             max_objects=to["max_objects"], own_trace_snr=to["own_trace_snr"],
-                             n_bins=to["n_bins"], order=to["order"],
-                             reject_sigma=to["reject_sigma"], min_bin_snr=to["min_bin_snr"],
-                             reference=reference_trace if to["use_standard_reference"] else None,
-                             reference_name=reference_name)
-    half = aperture_half_widths(traces, aperture_fwhm=eo["aperture_fwhm"],
-                        min_half_width_px=eo["min_half_width_px"])
-    extractions = []
-    for tr, h in zip(traces, half):
-        extractions.append(extract(
-            rect.data, rect.variance, rect.mask, tr.position_px(wave_grid), half_width_px=h,
-            background_variance=bkg_r, signal_variance_factor=gfac,
-            signal_variance_quadratic=qfac, sky=sky_r,
-            sky_variance=sky_err_r ** 2, profile_knot_px=eo["profile_knot_px"],
+    offset = to["target_offset_arcsec"] if target_offset_arcsec is None else target_offset_arcsec
+    objects = extract_objects(
+        rect.data, rect.variance, rect.mask, grid.centres_angstrom(),
+        background_variance=bkg_r, signal_variance_factor=gfac,
+        signal_variance_quadratic=qfac, sky=sky_r, sky_variance=sky_err_r ** 2,
+        expected_row_px=0.5 * (rect.data.shape[0] - 1)
+        + float(offset) / spatial_scale_arcsec_per_px,
+        fwhm_guess_px=fwhm_px, reference_trace=reference_trace, reference_name=reference_name,
+        tracing=to, extraction=eo)
+    return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, qfac, sky_region, wave_corr,
+                          flex, model.info, objects.traces, objects.half_widths_px,
+                          objects.extractions, objects.roles, objects.info)
+
+
+@dataclass(frozen=True)
+class ObjectsOnSlit:
+    """The sources of a rectified frame, traced and extracted (:func:`extract_objects`).
+
+    ``traces``, ``half_widths_px``, ``extractions``, ``roles``: the target first, then the
+    other objects by decreasing detection S/N; ``info``: see ``FrameReduction.objects_info``.
+    """
+
+    traces: list
+    half_widths_px: list
+    extractions: list
+    roles: tuple
+    info: dict
+
+
+def extract_objects(data, variance, mask, wave_angstrom, *, background_variance=None,
+                    signal_variance_factor=None, signal_variance_quadratic=None, sky=None,
+                    sky_variance=None, expected_row_px=None, fwhm_guess_px=3.0,
+                    reference_trace=None, reference_name="", tracing=None, extraction=None):
+    """Find the sources of a rectified, sky-subtracted frame, trace and extract them.
+
+    Candidates (:func:`pipeline.extraction.detect.find_objects`) are reviewed
+    (:func:`pipeline.extraction.detect.review_candidates`), traced and extracted; the target
+    is the object nearest ``expected_row_px`` (default: the middle row); other objects
+    whose extraction contradicts their detection are dropped (:func:`keep_extracted`) and
+    the remaining apertures extracted again (a dropped neighbour may have narrowed them).
+
+    Parameters
+    ----------
+    data, variance, mask : ndarray, shape (ny, n)
+        Rectified, sky-subtracted frame.
+    wave_angstrom : ndarray, shape (n,)
+    background_variance, signal_variance_factor, signal_variance_quadratic, sky, sky_variance
+        Variance model and sky (see :func:`pipeline.extraction.extract.extract`).
+    expected_row_px : float, optional
+        Where the target is expected, row of the rectified frame.
+    fwhm_guess_px : float
+        Expected seeing FWHM, rows.
+    reference_trace, reference_name
+        Shape faint objects borrow (see :func:`pipeline.extraction.trace.trace_detections`).
+    tracing, extraction : dict, optional
+        Options of the config sections.
+
+    Returns
+    -------
+    ObjectsOnSlit
+    """
+    to = merge_options(tracing, TRACING_DEFAULTS, "tracing")
+    eo = merge_options(extraction, EXTRACTION_DEFAULTS, "extraction")
+    ny = data.shape[0]
+    expected_row = 0.5 * (ny - 1) if expected_row_px is None else float(expected_row_px)
+    profile = detect.spatial_profile(data, variance, mask)
+    review = detect.review_candidates(
+        profile, detect.find_objects(profile, fwhm_guess_px=fwhm_guess_px,
+                                     snr_min=to["snr_min"], max_objects=to["max_objects"]),
+        fwhm_guess_px=fwhm_guess_px, residual_factor=to["residual_factor"],
+        min_fwhm_seeing=to["min_fwhm_seeing"])
+    not_sources = [_candidate_row(d, reason) for d, reason in review.rejected]
+    traces = trc.trace_detections(
+        data, variance, mask, wave_angstrom, review.objects,
+        own_trace_snr=to["own_trace_snr"], n_bins=to["n_bins"], order=to["order"],
+        reject_sigma=to["reject_sigma"], min_bin_snr=to["min_bin_snr"],
+        reference=reference_trace if to["use_standard_reference"] else None,
+        reference_name=reference_name)
+
+    def extract_all(trs):
+        half = aperture_half_widths(trs, aperture_fwhm=eo["aperture_fwhm"],
+                                    min_half_width_px=eo["min_half_width_px"])
+        return half, [extract(
+            data, variance, mask, tr.position_px(wave_angstrom), half_width_px=h,
+            background_variance=background_variance,
+            signal_variance_factor=signal_variance_factor,
+            signal_variance_quadratic=signal_variance_quadratic, sky=sky,
+            sky_variance=sky_variance, profile_knot_px=eo["profile_knot_px"],
             profile_wave_order=eo["profile_wave_order"],
             profile_smooth_px=eo["profile_smooth_px"], reject_sigma=eo["reject_sigma"],
             max_iterations=eo["max_iterations"],
             profile_error_fraction=eo["profile_error_fraction"],
             max_masked_profile=eo["max_masked_profile"],
-            max_saturated_profile=eo["max_saturated_profile"]))
-    return FrameReduction(rect, sky_r, sky_err_r ** 2, bkg_r, gfac, qfac, sky_region, wave_corr,
-                          flex, model.info, traces, half, extractions)
+            max_saturated_profile=eo["max_saturated_profile"],
+            systematic_fraction=eo["systematic_fraction"]) for tr, h in zip(trs, half)]
+
+    half, extractions = extract_all(traces)
+    target = choose_target([t.centre_px for t in traces], expected_row)
+    verdicts = extraction_verdicts(extractions, target,
+                                   min_extracted_snr=to["min_extracted_snr"],
+                                   max_sky_fraction=to["max_sky_fraction"])
+    for i, verdict in enumerate(verdicts):
+        if verdict:
+            d = review.objects[i]
+            not_sources.append(_candidate_row(d, f"{verdict} (detection S/N {d.snr:.1f})"))
+    for row in not_sources:
+        warnings.warn(f"candidate at row {row['row_px']:.1f} is not a source: {row['reason']}",
+                      trc.TracingWarning)
+    order = object_order(traces, target, [not v for v in verdicts])
+    if len(order) < len(traces):  # apertures narrowed by a dropped neighbour widen again
+        traces = [traces[i] for i in order]
+        half, extractions = extract_all(traces)
+    else:
+        traces = [traces[i] for i in order]
+        half = [half[i] for i in order]
+        extractions = [extractions[i] for i in order]
+    roles = tuple("target" if i == target else "other" for i in order)
+    return ObjectsOnSlit(traces, half, extractions, roles,
+                         {"expected_target_row_px": expected_row,
+                          "residual_level": float(review.residual_level),
+                          "profile_noise": float(review.noise),
+                          "seeing_px": float(review.seeing_px),
+                          "not_sources": not_sources})

@@ -8,6 +8,7 @@ writes. The header cards are built by small functions tested on their own
 (:func:`product_header`, :func:`frame_cards`, :func:`spectrum_cards`).
 """
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -15,14 +16,17 @@ from astropy.io import fits
 from astropy.table import Table
 
 from pipeline.core import provenance
+from pipeline.core.checks import merge_options
+from pipeline.core.errors import InputFileWarning
 from pipeline.core.headers import is_raw_geometry_keyword
 from pipeline.core.spectra import LISTING_COLUMNS, spectrum_file_name
-from pipeline.extraction.frame import reduce_frame
+from pipeline.extraction.frame import TRACING_DEFAULTS, reduce_frame
 from pipeline.extraction.rectify import slit_wcs_cards
 from pipeline.extraction.trace import traces_to_table
 
 __all__ = ["FrameOutputs", "SpectrumOutput", "reduce_frame_outputs", "frame_outputs",
-           "product_header", "frame_cards", "spectrum_cards", "slit_position_arcsec"]
+           "product_header", "frame_cards", "spectrum_cards", "object_labels",
+           "slit_position_arcsec", "expected_target_offset"]
 
 #: storage keywords of the calibrated frame, never copied into products
 _NOT_COPIED = ("SIMPLE", "BITPIX", "NAXIS", "NAXIS1", "NAXIS2", "EXTEND", "BZERO", "BSCALE",
@@ -92,8 +96,28 @@ def frame_cards(reduction, *, frame_id, frame_type, setup):
     ]
 
 
-def spectrum_cards(trace, half_width_px, extraction, *, aperture, n_objects, ny,
-                   arcsec_per_px):
+def object_labels(roles):
+    """File labels of the objects on the slit: ``target``, then ``other1``, ``other2``, ...
+
+    Examples
+    --------
+    >>> object_labels(("target", "other", "other"))
+    ['target', 'other1', 'other2']
+    >>> object_labels(("other",))
+    ['other1']
+    """
+    labels, k = [], 0
+    for role in roles:
+        if role == "target":
+            labels.append("target")
+        else:
+            k += 1
+            labels.append(f"other{k}")
+    return labels
+
+
+def spectrum_cards(trace, half_width_px, extraction, *, role, label, n_objects, ny,
+                   arcsec_per_px, expected_target_arcsec):
     """Cards ``(keyword, value, comment)`` of one object's 1-D product.
 
     Examples
@@ -102,24 +126,29 @@ def spectrum_cards(trace, half_width_px, extraction, *, aperture, n_objects, ny,
     >>> from types import SimpleNamespace
     >>> ex = SimpleNamespace(info={"snr_median": 12.0, "n_rejected": 3})
     >>> cards = spectrum_cards(fixed_trace([4000.0, 6000.0], 30.0, 4.0, 50.0), 6.0, ex,
-    ...                        aperture=1, n_objects=1, ny=61, arcsec_per_px=0.5)
-    >>> dict((k, v) for k, v, _ in cards)["APCENAS"]
-    0.0
+    ...                        role="target", label="target", n_objects=1, ny=61,
+    ...                        arcsec_per_px=0.5, expected_target_arcsec=0.0)
+    >>> values = {k: v for k, v, _ in cards}
+    >>> values["OBJROLE"], values["OBJPOSAS"]
+    ('target', 0.0)
     """
     centre = float(trace.centre_px)
     return [
-        ("APERTURE", int(aperture), "aperture number (1 = highest S/N)"),
+        ("OBJROLE", str(role), "target or other (object on the slit)"),
+        ("OBJLABEL", str(label), "target, other1, other2... (file name label)"),
         ("NOBJECTS", int(n_objects), "objects traced on this frame"),
-        ("APCENPX", round(centre, 4), "trace centre at APREFWL, rectified row"),
-        ("APCENAS", round(slit_position_arcsec(centre, ny, arcsec_per_px), 4),
+        ("EXPECTAS", round(float(expected_target_arcsec), 4),
+         "expected target place, arcsec from slit centre"),
+        ("OBJPOSPX", round(centre, 4), "trace centre at OBJREFWL, rectified row"),
+        ("OBJPOSAS", round(slit_position_arcsec(centre, ny, arcsec_per_px), 4),
          "same, arcsec from the slit centre"),
-        ("APREFWL", round(float(trace.reference_wave_angstrom), 3),
-         "reference wavelength, Angstrom"),
-        ("APHWPX", round(float(half_width_px), 4), "boxcar half width, rows"),
-        ("APFWHMPX", round(float(trace.fwhm_px), 4), "spatial FWHM, rows"),
+        ("OBJREFWL", round(float(trace.reference_wave_angstrom), 3),
+         "wavelength of OBJPOSPX, Angstrom"),
+        ("BOXHALFW", round(float(half_width_px), 4), "boxcar half width, rows"),
+        ("SPATFWHM", round(float(trace.fwhm_px), 4), "spatial FWHM of the profile, rows"),
         ("TRCMODE", trace.mode, "own, reference (offset fitted) or fixed"),
         ("TRCREF", str(trace.reference)[:60], "reference of the trace shape"),
-        ("EXTMETH", "optimal", "HDU 0; boxcar in BOXFLUX"),
+        ("EXTMETH", "optimal", "HDU 0; boxcar sum in SUMFLUX"),
         ("SNRMED", round(float(extraction.info["snr_median"]), 3),
          "median S/N per pixel, optimal"),
         ("NREJECT", int(extraction.info["n_rejected"]), "pixels rejected in the profile fit"),
@@ -161,7 +190,7 @@ class FrameOutputs:
     image_wcs_cards : list of tuple
         WCS cards of every image extension of the rectified frame.
     spectra : tuple of SpectrumOutput
-        Aperture 1 first.
+        The target first, then the other objects on the slit.
     listing : astropy.table.Table
         ``extraction.ecsv`` (columns :data:`pipeline.core.spectra.LISTING_COLUMNS`).
     trace_table, flexure_table : astropy.table.Table
@@ -227,31 +256,71 @@ def frame_outputs(header, reduction, *, frame_id, frame_type, setup, arcsec_per_
 
     spectra, rows = [], []
     n_objects = len(reduction.traces)
-    for aperture, (trace, half, ex) in enumerate(zip(reduction.traces,
-                                                     reduction.half_widths_px,
-                                                     reduction.extractions), start=1):
-        name = spectrum_file_name(object_name, aperture)
-        hdr = _with_cards(base, spectrum_cards(trace, half, ex, aperture=aperture,
+    roles = tuple(reduction.roles) or ("target",) + ("other",) * max(n_objects - 1, 0)
+    labels = object_labels(roles)
+    expected_arcsec = slit_position_arcsec(
+        reduction.objects_info.get("expected_target_row_px", 0.5 * (ny - 1)), ny,
+        arcsec_per_px)
+    for trace, half, ex, role, label in zip(reduction.traces, reduction.half_widths_px,
+                                            reduction.extractions, roles, labels):
+        name = spectrum_file_name(object_name, label)
+        hdr = _with_cards(base, spectrum_cards(trace, half, ex, role=role, label=label,
                                                n_objects=n_objects, ny=ny,
-                                               arcsec_per_px=arcsec_per_px))
+                                               arcsec_per_px=arcsec_per_px,
+                                               expected_target_arcsec=expected_arcsec))
         provenance.stamp(hdr, inputs=inputs, calibrations=calibrations)
         spectra.append(SpectrumOutput(name, hdr, ex))
         good = ex.mask == 0
-        rows.append([str(frame_id), object_name, aperture, name, trace.centre_px,
+        rows.append([str(frame_id), object_name, role, label, name, trace.centre_px,
                      slit_position_arcsec(trace.centre_px, ny, arcsec_per_px), trace.fwhm_px,
                      trace.mode, float(ex.info["snr_median"]), float(np.sum(ex.flux[good])),
                      "ok"])
     listing = Table(rows=rows or None, names=LISTING_COLUMNS,
-                    dtype=[str, str, int, str, float, float, float, str, float, float, str])
+                    dtype=[str, str, str, str, str, float, float, float, str, float, float,
+                           str])
     listing.meta.update({"frame_id": str(frame_id), "setup": str(setup),
                          "wavelength_start_angstrom": float(grid.centres_angstrom()[0]),
+                         "expected_target_arcsec": float(expected_arcsec),
+                         "not_sources": [dict(c) for c in
+                                         reduction.objects_info.get("not_sources", [])],
                          "description": "1-D spectra written for this frame "
                                         "(pipeline.core.spectra)"})
-    traces = traces_to_table(reduction.traces, frame_id=str(frame_id), object_name=object_name)
+    traces = traces_to_table(reduction.traces, frame_id=str(frame_id), object_name=object_name,
+                             roles=roles, labels=labels)
     return FrameOutputs(reduction, object_name, float(arcsec_per_px), rect_header, wcs_cards,
                         tuple(spectra), listing, traces,
                         _flexure_table(reduction.flexure, frame_id),
                         f"{frame_id}  {object_name}  ({frame_type}, {setup})")
+
+
+def expected_target_offset(header, *, offset_arcsec=0.0, keyword=None):
+    """Where the target is expected along the slit, arcsec from the slit centre.
+
+    The value of ``keyword`` in the frame header when it is configured and holds a
+    number, else ``offset_arcsec`` (``tracing.target_offset_arcsec``; default 0: the
+    slit centre). A keyword that is configured but missing or not a number gives a
+    warning naming it.
+
+    Examples
+    --------
+    >>> expected_target_offset(fits.Header({"SLITOFF": -9.5}), keyword="SLITOFF")
+    -9.5
+    >>> expected_target_offset(fits.Header(), offset_arcsec=1.5)
+    1.5
+    """
+    if keyword:
+        value = header.get(keyword)
+        try:
+            number = float(value)
+        except (TypeError, ValueError):
+            number = float("nan")
+        if np.isfinite(number):
+            return number
+        warnings.warn(f"keyword {keyword} (tracing.target_offset_keyword) is "
+                      f"{'missing' if value is None else repr(value)}; expected the target's "
+                      f"offset along the slit in arcsec; using {offset_arcsec:g} arcsec",
+                      InputFileWarning)
+    return float(offset_arcsec)
 
 
 def reduce_frame_outputs(data, variance, mask, header, wave_map, *, frame_id, frame_type,
@@ -268,10 +337,14 @@ def reduce_frame_outputs(data, variance, mask, header, wave_map, *, frame_id, fr
     -------
     FrameOutputs
     """
+    options = merge_options(tracing, TRACING_DEFAULTS, "tracing")
     reduction = reduce_frame(data, variance, mask, wave_map,
                              line_wave_angstrom=line_wave_angstrom, line_species=line_species,
                              spatial_scale_arcsec_per_px=arcsec_per_px,
                              reference_trace=reference_trace, reference_name=reference_name,
+                             target_offset_arcsec=expected_target_offset(
+                                 header, offset_arcsec=options["target_offset_arcsec"],
+                                 keyword=options["target_offset_keyword"]),
                              rectification=rectification, flexure=flexure, sky=sky,
                              tracing=tracing, extraction=extraction)
     return frame_outputs(header, reduction, frame_id=frame_id, frame_type=frame_type,

@@ -15,9 +15,17 @@ from pathlib import Path
 
 import numpy as np
 
+from pipeline.extraction.outputs import object_labels
+
 __all__ = ["plot_rectified_frame", "plot_spectra"]
 
 _COLOURS = ("tab:orange", "tab:cyan", "tab:green", "tab:pink", "tab:olive")
+
+
+def _labels(reduction):
+    """``target``, ``other1``, ... of the reduction's objects (as in the file names)."""
+    roles = tuple(reduction.roles) or ("target",) + ("other",) * (len(reduction.traces) - 1)
+    return object_labels(roles)
 
 
 def _pyplot():
@@ -62,7 +70,7 @@ def plot_rectified_frame(reduction, path, *, title="", arcsec_per_px=None):
     for i, (tr, h) in enumerate(zip(reduction.traces, reduction.half_widths_px)):
         c = _COLOURS[i % len(_COLOURS)]
         yc = tr.position_px(wave)
-        ax.plot(wave, yc, color=c, lw=0.8, label=f"ap{i + 1} ({tr.mode}, S/N {tr.snr:.0f})")
+        ax.plot(wave, yc, color=c, lw=0.8, label=f"{_labels(reduction)[i]} ({tr.mode}, S/N {tr.snr:.0f})")
         ax.plot(wave, yc - h, color=c, lw=0.6, ls="--")
         ax.plot(wave, yc + h, color=c, lw=0.6, ls="--")
     ax.plot([], [], color="tab:blue", lw=0.6, label="sky region edge")
@@ -130,7 +138,7 @@ def plot_spectra(reduction, path, *, title=""):
             ax.set_ylim(min(lo - pad, 0), hi + pad)
         tr = reduction.traces[i]
         ax.set_ylabel("electron / pixel")
-        ax.set_title(f"ap{i + 1}: row {tr.centre_px:.1f}, trace {tr.mode}, "
+        ax.set_title(f"{_labels(reduction)[i]}: row {tr.centre_px:.1f}, trace {tr.mode}, "
                      f"median S/N {ex.info['snr_median']:.1f}", fontsize=9)
         ax.legend(loc="upper right", fontsize=7)
     axes[-1, 0].set_xlabel("air wavelength (Angstrom)")

@@ -22,10 +22,11 @@ from scipy.ndimage import map_coordinates
 from pipeline.core.errors import ExtractionError, PipelineWarning
 from pipeline.core.maskbits import MaskBit
 from pipeline.extraction.detect import (FWHM_PER_SIGMA as _FWHM_PER_SIGMA, find_objects,
-                                        fit_gaussian, good_pixels, robust_sigma,
-                                        spatial_profile)
+                                        fit_gaussian, good_pixels, review_candidates,
+                                        robust_sigma, spatial_profile)
 
 __all__ = ["Trace", "trace_object", "offset_trace", "fixed_trace", "trace_frame",
+           "trace_detections",
            "traces_to_table", "traces_from_table", "TracingWarning"]
 
 
@@ -259,7 +260,8 @@ def fixed_trace(wave_angstrom, y_px, fwhm_px, snr):
 
 def trace_frame(data, variance, mask, wave_angstrom, *, fwhm_guess_px=3.0, snr_min=5.0,
                 max_objects=10, own_trace_snr=30.0, n_bins=24, order=3, reject_sigma=3.0,
-                min_bin_snr=5.0, reference=None, reference_name=""):
+                min_bin_snr=5.0, residual_factor=1.5, min_fwhm_seeing=0.5, reference=None,
+                reference_name=""):
     """Find and trace every object of a rectified, sky-subtracted frame.
 
     Parameters
@@ -267,7 +269,11 @@ def trace_frame(data, variance, mask, wave_angstrom, *, fwhm_guess_px=3.0, snr_m
     data, variance, mask : ndarray, shape (ny, n)
     wave_angstrom : ndarray, shape (n,)
     fwhm_guess_px, snr_min, max_objects
-        Detection (see :func:`find_objects`).
+        Detection (see :func:`pipeline.extraction.detect.find_objects`).
+    residual_factor, min_fwhm_seeing
+        Which candidates are sources (see
+        :func:`pipeline.extraction.detect.review_candidates`); the others are
+        reported by a TracingWarning and not traced.
     own_trace_snr : float
         Objects detected with a lower S/N borrow the shape of ``reference``
         (or, without one, of the brightest object traced on its own here).
@@ -281,11 +287,36 @@ def trace_frame(data, variance, mask, wave_angstrom, *, fwhm_guess_px=3.0, snr_m
     Returns
     -------
     list of Trace
-        Sorted by decreasing detection S/N (aperture 1 first).
+        Sorted by decreasing detection S/N.
     """
     prof = spatial_profile(data, variance, mask)
-    dets = find_objects(prof, fwhm_guess_px=fwhm_guess_px, snr_min=snr_min,
-                        max_objects=max_objects)
+    review = review_candidates(prof, find_objects(prof, fwhm_guess_px=fwhm_guess_px,
+                                                  snr_min=snr_min, max_objects=max_objects),
+                               fwhm_guess_px=fwhm_guess_px, residual_factor=residual_factor,
+                               min_fwhm_seeing=min_fwhm_seeing)
+    for d, reason in review.rejected:
+        warnings.warn(f"candidate at row {d.position_px:.1f} (detection S/N {d.snr:.1f}) is "
+                      f"not a source: {reason}", TracingWarning)
+    return trace_detections(data, variance, mask, wave_angstrom, review.objects,
+                            own_trace_snr=own_trace_snr, n_bins=n_bins, order=order,
+                            reject_sigma=reject_sigma, min_bin_snr=min_bin_snr,
+                            reference=reference, reference_name=reference_name)
+
+
+def trace_detections(data, variance, mask, wave_angstrom, detections, *, own_trace_snr=30.0,
+                     n_bins=24, order=3, reject_sigma=3.0, min_bin_snr=5.0, reference=None,
+                     reference_name=""):
+    """Trace the given objects of a rectified, sky-subtracted frame.
+
+    Parameters are those of :func:`trace_frame`; ``detections`` (list of
+    :class:`pipeline.extraction.detect.Detection`) are the objects, in the order the
+    traces are returned.
+
+    Returns
+    -------
+    list of Trace
+    """
+    dets = list(detections)
     traces = []
     pending = []
     for d in dets:
@@ -321,8 +352,12 @@ def trace_frame(data, variance, mask, wave_angstrom, *, fwhm_guess_px=3.0, snr_m
 
 
 # -- table I/O -----------------------------------------------------------------------
-def traces_to_table(traces, *, frame_id="", object_name=""):
-    """Traces as an astropy Table (ECSV-ready), one row per aperture."""
+def traces_to_table(traces, *, frame_id="", object_name="", roles=None, labels=None):
+    """Traces as an astropy Table (ECSV-ready), one row per object.
+
+    ``roles`` (``target``/``other``) and ``labels`` (``target``, ``other1``, ...) default
+    to the first trace being the target.
+    """
     from astropy.table import Table
 
     max_n = max([len(t.coefficients) for t in traces], default=1)
@@ -332,7 +367,12 @@ def traces_to_table(traces, *, frame_id="", object_name=""):
     table = Table()
     table["frame_id"] = [frame_id] * len(traces)
     table["object"] = [object_name] * len(traces)
-    table["aperture"] = np.arange(1, len(traces) + 1)
+    if roles is None:
+        roles = ["target"] + ["other"] * max(len(traces) - 1, 0)
+    if labels is None:
+        labels = ["target"] + [f"other{k}" for k in range(1, len(traces))]
+    table["role"] = [str(r) for r in roles][:len(traces)]
+    table["label"] = [str(lab) for lab in labels][:len(traces)]
     table["mode"] = [t.mode for t in traces]
     table["reference"] = [t.reference or "none" for t in traces]  # no empty (masked) cells
     table["centre_px"] = [t.centre_px for t in traces]

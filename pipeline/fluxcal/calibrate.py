@@ -374,7 +374,7 @@ def calibrate_frame(entries, *, frame, out_dir, setup, sensitivity, sensitivity_
     """
     products, rows, plotted = [], [], []
     for path, listed, spectrum in entries:
-        row = dict(object=listed.get("object", ""), aperture=listed.get("aperture", ""),
+        row = dict(object=listed.get("object", ""), aperture=listed.get("label", ""),
                    input_file=str(path), file=str(path), status="uncalibrated", reason=reason)
         if sensitivity is not None:
             try:

@@ -65,29 +65,29 @@ def gaussian_slit_fraction(wave_angstrom, *, fwhm_arcsec, reference_wave_angstro
 def profile_fwhm_arcsec(header, wave_angstrom, *, spatial_scale_arcsec_per_px, path="<header>"):
     """FWHM (arcsec) and reference wavelength (Angstrom) of an extracted profile.
 
-    From the header: ``APFWHMPX`` rows with the pixel's own width removed in
+    From the header: ``SPATFWHM`` rows with the pixel's own width removed in
     quadrature (a Gaussian integrated over 1-px bins has sigma^2 + 1/12 px^2),
-    times ``BINSPAT`` (1 when absent) times the unbinned scale, at ``APREFWL``
+    times ``BINSPAT`` (1 when absent) times the unbinned scale, at ``OBJREFWL``
     (the median wavelength when absent).
 
     Raises
     ------
     InputFileError
-        When APFWHMPX is missing or not a number.
+        When SPATFWHM is missing or not a number.
 
     Examples
     --------
     >>> from astropy.io import fits
-    >>> h = fits.Header({"APFWHMPX": math.sqrt(2.5 ** 2 + PIXEL_FWHM2), "BINSPAT": 2})
+    >>> h = fits.Header({"SPATFWHM": math.sqrt(2.5 ** 2 + PIXEL_FWHM2), "BINSPAT": 2})
     >>> fwhm, ref = profile_fwhm_arcsec(h, [4000.0, 6000.0], spatial_scale_arcsec_per_px=0.2)
     >>> round(fwhm, 6), ref
     (1.0, 5000.0)
     """
-    fwhm_px = header_float(header, "APFWHMPX", path=path)
+    fwhm_px = header_float(header, "SPATFWHM", path=path)
     fwhm_px = math.sqrt(max(fwhm_px ** 2 - PIXEL_FWHM2, 0.25 * fwhm_px ** 2))
     binning = header_float(header, "BINSPAT", path=path, default=1.0)
     binning = binning if binning > 0 else 1.0
-    ref = header_float(header, "APREFWL", path=path, default=math.nan)
+    ref = header_float(header, "OBJREFWL", path=path, default=math.nan)
     if not math.isfinite(ref):
         ref = float(np.median(wave_angstrom))
     if spatial_scale_arcsec_per_px is None:
@@ -97,7 +97,7 @@ def profile_fwhm_arcsec(header, wave_angstrom, *, spatial_scale_arcsec_per_px, p
 
 def header_slit_fraction(header, wave_angstrom, *, spatial_scale_arcsec_per_px, seeing_exponent,
                          path="<header>"):
-    """Gaussian slit fraction of a spectrum from its header (APFWHMPX, SLITWID, ...).
+    """Gaussian slit fraction of a spectrum from its header (SPATFWHM, SLITWID, ...).
 
     Returns
     -------

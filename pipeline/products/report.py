@@ -190,7 +190,7 @@ def _problems_section(out_dir, manifest, night_log, messages):
 
 def _seeing(out_dir, manifest, spatial_scale_arcsec_per_px):
     """Frame id -> FWHM (arcsec) of the narrowest object traced on its own on that frame
-    (spectrum headers APFWHMPX, BINSPAT): the seeing for a star, an upper limit for a galaxy."""
+    (spectrum headers SPATFWHM, BINSPAT): the seeing for a star, an upper limit for a galaxy."""
     seeing = {}
     if not spatial_scale_arcsec_per_px:
         return seeing
@@ -201,10 +201,10 @@ def _seeing(out_dir, manifest, spatial_scale_arcsec_per_px):
             header = fits.getheader(Path(out_dir) / str(r["path"]))
         except (OSError, ValueError):
             continue
-        if str(header.get("TRCMODE", "own")) != "own" or "APFWHMPX" not in header:
+        if str(header.get("TRCMODE", "own")) != "own" or "SPATFWHM" not in header:
             continue
         frame = str(header.get("FRAMEID", Path(str(r["path"])).parent.name))
-        fwhm = (float(header["APFWHMPX"]) * float(spatial_scale_arcsec_per_px)
+        fwhm = (float(header["SPATFWHM"]) * float(spatial_scale_arcsec_per_px)
                 * float(header.get("BINSPAT", 1)))
         seeing[frame] = min(fwhm, seeing.get(frame, fwhm))
     return seeing
