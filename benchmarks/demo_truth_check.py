@@ -284,7 +284,7 @@ def check_flat(rep, truth, out_dir, log):
         setup = path.stem.replace("master_flat_", "")
         with fits.open(path) as h:
             flat = h[0].data.astype(float)
-            fvar = h["UNCERT"].data.astype(float)
+            fvar = h["VAR"].data.astype(float)
             mask = h["MASK"].data
             hdr = h[0].header
         cal_hdr = hdr if "ORIENT_T" in hdr else _calibrated_header(out_dir, setup, log)
@@ -306,7 +306,7 @@ def check_flat(rep, truth, out_dir, log):
         rep.add("flat", setup, "master flat / true response: median", med, "", "info", "{:.5f}")
         rep.add("flat", setup, "  smooth part along x: min..max (convention)",
                 f"{col.min():.4f}..{col.max():.4f}")
-        rep.add("flat", setup, "  pixel-scale rms (%); / its UNCERT",
+        rep.add("flat", setup, "  pixel-scale rms (%); / its VAR",
                 f"{100 * np.std((r / sm)[good] - 1):.3f}; {np.std(z[good]):.3f}")
     return conv
 
@@ -460,7 +460,7 @@ def check_sky(rep, truth, out_dir, log):
                 rep.add("sky", fid, "residual/expected", "no SKY/SKYREG extension")
                 continue
             data = h[0].data.astype(float)
-            var = h["UNCERT"].data.astype(float)
+            var = h["VAR"].data.astype(float)
             mask = h["MASK"].data
             sky = h["SKY"].data.astype(float)
             reg = h["SKYREG"].data.astype(bool)
@@ -521,7 +521,7 @@ def extraction_truth(truth, out_dir, fid, spec_path, conv=None):
     the boxcar aperture), ``truth_total`` (whole slit), the same ``*_c`` divided by the
     smooth flat convention ``conv`` (pipeline pixels), and ``sky_true_opt_c`` /
     ``sky_pipe_opt`` (true and subtracted sky in the optimal aperture) and
-    ``boxvar_data`` (boxcar weights squared times the rectified frame's UNCERT).
+    ``boxvar_data`` (boxcar weights squared times the rectified frame's VAR).
     """
     with fits.open(spec_path) as h:
         hdr = h[0].header
@@ -539,7 +539,7 @@ def extraction_truth(truth, out_dir, fid, spec_path, conv=None):
             if h[0].data.shape[1] == wave.size:
                 r = np.arange(h[0].data.shape[0], dtype=float)[:, None]
                 frac = np.clip(np.minimum(r + 0.5, t + hw) - np.maximum(r - 0.5, t - hw), 0, 1)
-                res["boxvar_data"] = np.sum(frac ** 2 * h["UNCERT"].data, axis=0)
+                res["boxvar_data"] = np.sum(frac ** 2 * h["VAR"].data, axis=0)
                 if "SKY" in h:
                     res["sky_pipe_opt"] = np.sum((np.abs(r - t) <= hw) * h["SKY"].data, axis=0)
     model_path = truth.dir / (truth.frame(fid).get("model") or f"model_{fid}.fits")
@@ -643,9 +643,9 @@ def check_extraction(rep, truth, out_dir, log, cache):
             elif "boxvar_data" in ex:
                 gb = good & (ex["boxvar_data"] > 0)
                 bvd = ex["boxvar_data"]
-                rep.add("extraction", item, "  SUMVAR / sum(w^2 UNCERT of the rectified frame)",
+                rep.add("extraction", item, "  SUMVAR / sum(w^2 VAR of the rectified frame)",
                         float(np.median(v[gb] / bvd[gb])), "", "info", "{:.3f}")
-                rep.add("extraction", item, "  boxcar chi2/dof with sum(w^2 UNCERT) as variance",
+                rep.add("extraction", item, "  boxcar chi2/dof with sum(w^2 VAR) as variance",
                         float(np.mean((f[gb] - tru_c[gb]) ** 2 / bvd[gb])), "", "info", "{:.3f}")
 
 

@@ -283,7 +283,7 @@ def test_saturation_masked(night):
 def test_product_files(night):
     from astropy.nddata import CCDData
     path = night["out"] / "sci_cal.fits"
-    ccddata = CCDData.read(path)                        # astropy reads it back
+    ccddata = CCDData.read(path, hdu_uncertainty="VAR")                        # astropy reads it back
     assert ccddata.unit == "electron" and ccddata.mask.shape == ccddata.data.shape
     assert type(ccddata.uncertainty).__name__ == "VarianceUncertainty"
     with warnings.catch_warnings():

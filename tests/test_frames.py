@@ -36,7 +36,7 @@ def test_astropy_ccddata_reads_the_layout(tmp_path, rng):
     # astropy's CCDData reader is the independent check of the layout's conventions.
     frame = _frame(rng)
     path = write_frame(frame, tmp_path / "f.fits")
-    ccd = CCDData.read(path)
+    ccd = CCDData.read(path, hdu_uncertainty="VAR")   # the name of our variance extensions
     assert ccd.unit.to_string() == "electron"
     assert isinstance(ccd.uncertainty, VarianceUncertainty)
     assert_array_equal(ccd.uncertainty.array, frame.variance)
@@ -69,7 +69,7 @@ def test_shape_mismatch_raises_naming_the_array():
 def test_read_non_frame_names_file_and_extension(tmp_path):
     path = tmp_path / "plain.fits"
     fits.PrimaryHDU(np.zeros((3, 3))).writeto(path)
-    with pytest.raises(InputFileError, match=r"plain\.fits: extension UNCERT missing"):
+    with pytest.raises(InputFileError, match=r"plain\.fits: extension VAR missing"):
         read_frame(path)
     junk = tmp_path / "junk.fits"
     junk.write_bytes(b"not a fits file at all")

@@ -63,8 +63,16 @@ def test_specutils_round_trip(tmp_path, rng, log):
     assert header["CUNIT1"] == "Angstrom"
     assert header["OBJECT"] == "TRV-9" and header["EXPTIME"] == 900.0
     box = read_spectrum(path, method="boxcar")
-    np.testing.assert_allclose(box.flux, (flux * 1.01).astype(np.float32))
+    np.testing.assert_allclose(box.values, (flux * 1.01).astype(np.float32))
     np.testing.assert_allclose(box.wave_angstrom, grid.centres_angstrom())
+    np.testing.assert_allclose(box.variance, (var * 1.1).astype(np.float32))
+    assert box.header["OBJECT"] == "TRV-9" and box.unit == "electron"
+    # the one reader: the optimal extraction as specutils reads it (values, variance, mask)
+    opt = read_spectrum(path)
+    np.testing.assert_allclose(opt.values, spec.flux.value)
+    np.testing.assert_allclose(opt.variance, spec.uncertainty.array)
+    np.testing.assert_array_equal(opt.mask, np.asarray(spec.mask))
+    np.testing.assert_allclose(opt.wave_angstrom, spec.spectral_axis.to_value(u.AA))
     # the boxcar sum through specutils too: its variance HDU carries the uncertainty class
     with fits.open(path) as hdul:
         assert [h.name for h in hdul][:6] == ["FLUX", "VAR", "MASK", "SUMFLUX", "SUMVAR",
@@ -177,7 +185,7 @@ def test_adapter_writes_readable_products(tmp_path):
     # rectified frame: WCS with AWAV x arcsec, sky and variance-model extensions
     with fits.open(outs["rectified"]) as hdul:
         names = [h.name for h in hdul]
-        assert names[:3] == ["PRIMARY", "UNCERT", "MASK"]
+        assert names[:3] == ["PRIMARY", "VAR", "MASK"]
         assert {"SKY", "SKYVAR", "BKGVAR", "SIGVARF", "SIGVARQ", "SKYREG"} <= set(names)
         assert hdul[0].header["CTYPE1"] == "AWAV" and hdul[0].header["CUNIT2"] == "arcsec"
     flex = Table.read(outs["flexure_table"], format="ascii.ecsv")

@@ -62,7 +62,7 @@ def make_master_bias_file(*, frames, master, qa, instrument, overscan=None, bias
     frames : list of str
         Raw bias files (all of the same readout mode).
     master : str
-        Output frame: PRIMARY = bias in ADU (canonical orientation), UNCERT =
+        Output frame: PRIMARY = bias in ADU (canonical orientation), VAR =
         its variance (ADU^2), MASK = BAD_PIXEL where fewer than half the frames
         survived clipping. Header: ``NFRAMES``, ``RNMEAS`` (ADU), ``RNMEASE``
         (e-, with the configured gain), ``RNOK`` (within ``RNTOL`` of the
@@ -139,7 +139,7 @@ def make_master_flat_file(*, frames, bias, master, qa, instrument, overscan=None
     bias : str
         Master bias of their readout mode.
     master : str
-        Output frame: PRIMARY = normalised response (canonical), UNCERT = its
+        Output frame: PRIMARY = normalised response (canonical), VAR = its
         variance, MASK = UNILLUMINATED and BAD_PIXEL bits; extension LAMP = the
         smooth lamp spectrum divided out. Header: ``NFRAMES``, ``GAINMEAS``
         (e-/ADU, photon transfer; -1 when not measurable), ``GAINOK``,

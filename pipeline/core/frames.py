@@ -6,13 +6,16 @@ wavelength increasing with index, numpy axis 0 runs along the slit. Pixel
 ``(y, x)`` has its centre at integer coordinates and covers ``x - 0.5 .. x + 0.5``.
 
 File layout (CCDData conventions where they fit, so
-``astropy.nddata.CCDData.read(path)`` also opens it):
+``astropy.nddata.CCDData.read(path, hdu_uncertainty="VAR")`` also opens it; ``VAR`` is
+the variance extension of every product, 2-D frames and 1-D spectra alike, because it is
+the name specutils reads as a variance, while it reads ``UNCERT`` as a standard
+deviation):
 
 ========= ========================================================
 HDU       content
 ========= ========================================================
 PRIMARY   data (float32), ``BUNIT``, all header keywords
-UNCERT    variance (float32), ``UTYPE = 'VarianceUncertainty'``
+VAR       variance (float32), ``UTYPE = 'VarianceUncertainty'``
 MASK      bit mask (uint8), bits documented in :mod:`pipeline.core.maskbits`
 ========= ========================================================
 
@@ -74,7 +77,7 @@ class Frame:
         return replace(self, **changes)
 
 
-def read_frame(path, *, hdu_data=0, hdu_variance="UNCERT", hdu_mask="MASK"):
+def read_frame(path, *, hdu_data=0, hdu_variance="VAR", hdu_mask="MASK"):
     """Read a frame written by :func:`write_frame`.
 
     Raises
@@ -104,7 +107,7 @@ def read_frame(path, *, hdu_data=0, hdu_variance="UNCERT", hdu_mask="MASK"):
         raise InputFileError(path, str(exc)) from exc
 
 
-def write_frame(frame, path, *, hdu_variance="UNCERT", hdu_mask="MASK", extra_hdus=()):
+def write_frame(frame, path, *, hdu_variance="VAR", hdu_mask="MASK", extra_hdus=()):
     """Write a frame as multi-extension FITS with checksums.
 
     Parameters

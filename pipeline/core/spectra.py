@@ -28,8 +28,9 @@ reader) gives the **optimal extraction**:
   of the spatial profile (cosmic rays, bad pixels, saturation...).
 * ``meta['header']``: the header of HDU 0 (below).
 
-:func:`read_spectrum` reads the same file with astropy only (both
-extractions, as :class:`Spectrum1D` dataclasses).
+:func:`read_spectrum` reads the same file (either extraction) with astropy only, and any
+other specutils-style 1-D spectrum (the flux calibration reads its inputs with it), as an
+:class:`ExtractedSpectrum`.
 
 File layout
 -----------
@@ -93,17 +94,18 @@ plus the provenance keywords of :func:`pipeline.core.provenance.stamp`
 """
 
 import re
-from dataclasses import dataclass, field
+import warnings
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 from astropy.io import fits
 
 from pipeline.core.errors import InputFileError
-from pipeline.core.maskbits import MASK_DTYPE
+from pipeline.core.maskbits import MASK_DTYPE, MaskBit
 from pipeline.core.grid import WavelengthGrid
 
-__all__ = ["Spectrum1D", "sanitise_name", "spectrum_file_name", "write_spectrum",
+__all__ = ["ExtractedSpectrum", "sanitise_name", "spectrum_file_name", "write_spectrum",
            "read_spectrum", "LISTING_COLUMNS", "COPIED_KEYWORDS", "REQUIRED_KEYWORDS",
            "EXTENSIONS"]
 
@@ -159,30 +161,6 @@ def spectrum_file_name(object_name, label):
     if label != "target" and not (label.startswith("other") and label[5:].isdigit()):
         raise ValueError(f"`label` must be 'target' or 'other<k>', got {label!r}")
     return f"{sanitise_name(object_name)}_{label}.fits"
-
-
-@dataclass(frozen=True)
-class Spectrum1D:
-    """One extracted spectrum on a wavelength grid.
-
-    Attributes
-    ----------
-    flux : ndarray, shape (n,), electron
-    variance : ndarray, shape (n,), electron^2
-    mask : ndarray of uint8, shape (n,)
-    grid : WavelengthGrid
-    header : astropy.io.fits.Header
-    """
-
-    flux: np.ndarray
-    variance: np.ndarray
-    mask: np.ndarray
-    grid: WavelengthGrid
-    header: fits.Header = field(default_factory=fits.Header)
-
-    @property
-    def wave_angstrom(self):
-        return self.grid.centres_angstrom()
 
 
 def _image(data, name, grid, *, dtype, bunit=None, comment=None):
@@ -255,42 +233,197 @@ def write_spectrum(path, grid, header, *, flux, variance, mask, boxcar_flux, box
     return path
 
 
-def read_spectrum(path, *, method="optimal"):
-    """Read one extraction of a 1-D product with astropy only.
+@dataclass(frozen=True)
+class ExtractedSpectrum:
+    """A 1-D spectrum as read by :func:`read_spectrum` (an extraction or calibration product,
+    or any specutils-style 1-D spectrum).
+
+    Parameters
+    ----------
+    wave_angstrom : ndarray, shape (n,), Angstrom (air for our products)
+    values : ndarray, shape (n,)
+        Flux in ``unit`` (electrons per spectral pixel for extraction products).
+    variance : ndarray, shape (n,), ``unit`` squared
+    mask : ndarray of uint8, shape (n,)
+    header : astropy.io.fits.Header
+        The header of HDU 0 of our products (OBJECT, EXPTIME, AIRMASS, ... and the WCS),
+        else of the flux HDU.
+    path : str
+    unit : str
+    """
+
+    wave_angstrom: np.ndarray
+    values: np.ndarray
+    variance: np.ndarray
+    mask: np.ndarray
+    header: object
+    path: str
+    unit: str = "electron"
+
+
+#: uncertainty HDU names in specutils' order of preference, with the power giving variance
+_UNCERT_HDUS = (("STD", 2), ("ERR", 2), ("UNCERT", 2), ("VAR", 1), ("IVAR", -1))
+
+
+def _read_wcs1d_direct(path):
+    """Read a one-spectrum-per-HDU FITS file with astropy only, the way specutils'
+    ``wcs1d-fits`` reader does (flux HDU FLUX/SCI/DATA/PRIMARY, uncertainty from
+    VAR/STD/ERR/UNCERT/IVAR, mask from MASK/DQ/QUALITY). Returns None when the file does not
+    look like that, so that the caller falls back to specutils (slow to import: ~1 s)."""
+    from astropy import units as u
+    from astropy.wcs import WCS, FITSFixedWarning
+
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            names = [h.name for h in hdul]
+            flux_hdu = next((hdul[n] for n in ("FLUX", "SCI", "DATA", "PRIMARY")
+                             if n in names and hdul[n].data is not None
+                             and isinstance(hdul[n], (fits.PrimaryHDU, fits.ImageHDU))), None)
+            if flux_hdu is None or flux_hdu.data.ndim != 1:
+                return None
+            header = flux_hdu.header.copy()
+            if int(header.get("WCSAXES", 1)) != 1 or "CTYPE1" not in header:
+                return None
+            values = np.asarray(flux_hdu.data, dtype=float)
+            unc = next(((hdul[n].data, power) for n, power in _UNCERT_HDUS
+                        if n in names and hdul[n].data is not None), None)
+            mask_name = next((n for n in ("MASK", "DQ", "QUALITY")
+                              if n in names and hdul[n].data is not None), None)
+            mask = None
+            if mask_name is not None:
+                mask = np.asarray(hdul[mask_name].data)
+                if hdul[mask_name].header.get("BFORM", "B") in ("L", "X"):
+                    mask = mask.astype(bool)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", FITSFixedWarning)
+            wcs = WCS(header)
+        if wcs.naxis != 1:
+            return None
+        world = wcs.all_pix2world(np.arange(values.size), 0)[0]
+        cunit = u.Unit(wcs.wcs.cunit[0] or "Angstrom")
+        wave = (world * cunit).to_value(u.AA, equivalencies=u.spectral())
+        unit = u.Unit(header.get("BUNIT", ""))
+    except (OSError, ValueError, TypeError, u.UnitsError):
+        return None
+    if unc is None:
+        raise InputFileError(path, "no uncertainty HDU (VAR, STD or IVAR) found; expected the "
+                             "variance of every pixel")
+    data, power = unc
+    data = np.asarray(data, dtype=float)
+    with np.errstate(divide="ignore"):
+        var = data if power == 1 else (data ** 2 if power == 2 else 1.0 / data)
+    return wave, values, var, mask, header, unit
+
+
+def _read_with_specutils(path):
+    from astropy import units as u
+    from astropy.nddata import VarianceUncertainty
+    from specutils import Spectrum
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", category=Warning)
+            spec = Spectrum.read(str(path))
+    except Exception as exc:  # noqa: BLE001 - specutils raises many types
+        raise InputFileError(path, f"cannot be read by specutils.Spectrum.read ({exc}); expected "
+                             "a 1-D spectrum with a FITS spectral WCS") from exc
+    if spec.flux.ndim != 1:
+        raise InputFileError(path, f"flux has shape {spec.flux.shape}, expected one 1-D spectrum")
+    try:
+        wave = spec.spectral_axis.to_value(u.AA, equivalencies=u.spectral())
+    except u.UnitConversionError as exc:
+        raise InputFileError(path, f"spectral axis in {spec.spectral_axis.unit}, expected a "
+                             "wavelength") from exc
+    if spec.uncertainty is None:
+        raise InputFileError(path, "no uncertainty HDU (VAR, STD or IVAR) found; expected the "
+                             "variance of every pixel")
+    var = np.asarray(spec.uncertainty.represent_as(VarianceUncertainty).array, dtype=float)
+    return (wave, np.asarray(spec.flux.value, dtype=float), var, spec.mask,
+            spec.meta.get("header"), spec.flux.unit)
+
+
+def _read_boxcar(path):
+    """The boxcar sum of one of our products (HDUs SUMFLUX/SUMVAR/SUMMASK), astropy only."""
+    from astropy import units as u
+
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            present = [h.name for h in hdul]
+            for ext in EXTENSIONS["boxcar"]:
+                if ext not in present:
+                    raise InputFileError(path, f"HDU {ext} missing (found {present}); expected a "
+                                         "1-D product written by "
+                                         "pipeline.core.spectra.write_spectrum")
+            header = hdul[0].header.copy()
+            flux, var, mask = (np.asarray(hdul[e].data) for e in EXTENSIONS["boxcar"])
+            unit = u.Unit(hdul[EXTENSIONS["boxcar"][0]].header.get("BUNIT", "electron"))
+    except OSError as exc:
+        raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc
+    try:
+        wave = WavelengthGrid.from_header(header, axis=1).centres_angstrom()
+    except (KeyError, ValueError) as exc:
+        raise InputFileError(path, f"HDU 0 wavelength WCS unreadable: {exc}") from exc
+    return wave, flux.astype(float), var.astype(float), mask, header, unit
+
+
+def read_spectrum(path, *, method="optimal", expected_unit="electron"):
+    """Read a 1-D spectrum: our products (either extraction) or any specutils-style one.
 
     Parameters
     ----------
     path : str or Path
     method : {'optimal', 'boxcar'}
+        ``'optimal'``: the flux HDU as ``specutils.Spectrum.read`` finds it (FLUX, SCI, DATA
+        or PRIMARY; uncertainty VAR/STD/ERR/UNCERT/IVAR; mask MASK/DQ/QUALITY), read with
+        astropy alone when the layout allows (fast start-up for a job), else through
+        specutils. ``'boxcar'``: the boxcar sum of our products (SUMFLUX, SUMVAR, SUMMASK).
+    expected_unit : str or None
+        Flux unit the spectrum must be convertible to (None: any).
 
     Returns
     -------
-    Spectrum1D
-        ``header`` is the header of HDU 0 in both cases.
+    ExtractedSpectrum
+        Wavelengths converted to Angstrom and sorted increasing; the
+        uncertainty converted to variance (a missing uncertainty raises);
+        a boolean mask becomes BAD_PIXEL.
 
     Raises
     ------
     InputFileError
-        When an HDU is missing or the wavelength WCS is unreadable.
+        When the file cannot be read, an HDU is missing, the flux unit is wrong or the
+        uncertainty is missing.
     """
-    names = EXTENSIONS
-    if method not in names:
+    from astropy import units as u
+
+    if method not in EXTENSIONS:
         raise ValueError(f"`method` must be 'optimal' or 'boxcar', got {method!r}")
     path = Path(path)
-    try:
-        with fits.open(path, memmap=False) as hdul:
-            present = [h.name for h in hdul]
-            for ext in names[method]:
-                if ext not in present:
-                    raise InputFileError(path, f"HDU {ext} missing (found {present}); expected a "
-                                         "1-D product written by pipeline.core.spectra.write_spectrum")
-            header = hdul[0].header.copy()
-            try:
-                grid = WavelengthGrid.from_header(header, axis=1)
-            except (KeyError, ValueError) as exc:
-                raise InputFileError(path, f"HDU 0 wavelength WCS unreadable: {exc}") from exc
-            flux, var, mask = (np.asarray(hdul[e].data) for e in names[method])
-    except OSError as exc:
-        raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc
-    return Spectrum1D(flux.astype(np.float64), var.astype(np.float64), mask.astype(MASK_DTYPE),
-                      grid, header)
+    if method == "boxcar":
+        wave, values, var, mask, header, unit = _read_boxcar(path)
+    else:
+        direct = _read_wcs1d_direct(path)
+        if direct is not None:
+            wave, values, var, mask, header, unit = direct
+        else:
+            wave, values, var, mask, header, unit = _read_with_specutils(path)
+    scale = 1.0
+    if expected_unit is not None:
+        try:
+            scale = (1.0 * unit).to_value(u.Unit(expected_unit))
+        except u.UnitConversionError as exc:
+            raise InputFileError(path, f"flux unit (BUNIT) is '{unit}', expected "
+                                 f"'{expected_unit}'") from exc
+        unit = u.Unit(expected_unit)
+    values = values * scale
+    var = var * scale ** 2
+    if mask is None:
+        mask = np.zeros(values.shape, MASK_DTYPE)
+    else:
+        mask = np.asarray(mask)
+        mask = (np.where(mask, MaskBit.BAD_PIXEL, 0) if mask.dtype == bool else mask).astype(
+            MASK_DTYPE)
+    header = header.copy() if isinstance(header, fits.Header) else fits.Header()
+    order = np.argsort(wave)
+    if not np.all(order == np.arange(wave.size)):
+        wave, values, var, mask = wave[order], values[order], var[order], mask[order]
+    return ExtractedSpectrum(wave, values, var, mask, header, str(path), unit.to_string())
