@@ -39,6 +39,7 @@ include: "pipeline/rules/products.smk"
 localrules:
     all,
     night_log,
+    combine_spectra,
     manifest,
     night_report,
 
