@@ -141,10 +141,10 @@ def test_barycentric_correction_and_vacuum_axis_against_astropy_and_specutils():
 def _write_exposure(folder, frame, obj, setup, grid, flux, variance, *, date_obs, exptime=600.0):
     header = fits.Header({"OBJECT": obj, "SETUP": setup, "FRAMEID": frame, "EXPTIME": exptime,
                           "DATE-OBS": date_obs, "RA": 150.0, "DEC": -30.0, "AIRMASS": 1.1,
-                          "APERTURE": 1, "VARCORR": 1.5})
+                          "OBJROLE": "target", "OBJLABEL": "target", "VARCORR": 1.5})
     n = grid.n_pix
     zeros = np.zeros(n)
-    write_spectrum(folder / frame / f"{obj}_ap1.fits", grid, header, flux=flux, variance=variance,
+    write_spectrum(folder / frame / f"{obj}_target.fits", grid, header, flux=flux, variance=variance,
                    mask=np.zeros(n, np.uint8), boxcar_flux=flux, boxcar_variance=variance,
                    boxcar_mask=np.zeros(n, np.uint8), sky=zeros, trace_px=zeros + 10)
 

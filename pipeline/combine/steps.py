@@ -67,7 +67,7 @@ class GroupPlan:
 
 
 def plan_groups(entries):
-    """Group the night's aperture-1 spectra by (object, setup) and choose their inputs.
+    """Group the night's target spectra by (object, setup) and choose their inputs.
 
     Parameters
     ----------
@@ -165,7 +165,7 @@ def combine_group(plan, spectra, *, site, velocity_frame="barycentric", vacuum_w
     Parameters
     ----------
     plan : GroupPlan
-    spectra : list of pipeline.core.spectra.Spectrum1D
+    spectra : list of pipeline.core.spectra.ExtractedSpectrum
         Read from ``plan.paths`` (same order).
     site : dict
         ``latitude_deg``, ``longitude_deg``, ``height_m``.
@@ -245,7 +245,7 @@ def splice_groups(blue, red, *, min_overlap_angstrom=100.0):
 
 
 def _entries(spectra, fluxed):
-    """The aperture-1 spectrum of each frame, with its calibrated version if any."""
+    """The target's spectrum of each frame, with its calibrated version if any."""
     from astropy.io import fits
     from astropy.table import Table
 
@@ -253,9 +253,9 @@ def _entries(spectra, fluxed):
     entries = []
     for directory in map(Path, spectra):
         frame = directory.name
-        files = sorted(directory.glob("*_ap1.fits"))
+        files = sorted(directory.glob("*_target.fits"))
         if not files:
-            warnings.warn(f"{directory}: no aperture-1 spectrum (no object traced); frame "
+            warnings.warn(f"{directory}: no target spectrum (no object traced); frame "
                           f"{frame} is left out of the combined spectra", CombineWarning)
             continue
         header = fits.getheader(files[0])

@@ -250,6 +250,9 @@ class ExtractedSpectrum:
         else of the flux HDU.
     path : str
     unit : str
+    grid : WavelengthGrid or None
+        The spectral grid of HDU 0's WCS when it is a linear or log grid (our products),
+        else None. Wavelengths re-sorted to increase also leave it None.
     """
 
     wave_angstrom: np.ndarray
@@ -259,6 +262,12 @@ class ExtractedSpectrum:
     header: object
     path: str
     unit: str = "electron"
+    grid: object = None
+
+    @property
+    def flux(self):
+        """The flux values (``values``), in ``unit``."""
+        return self.values
 
 
 #: uncertainty HDU names in specutils' order of preference, with the power giving variance
@@ -424,6 +433,18 @@ def read_spectrum(path, *, method="optimal", expected_unit="electron"):
             MASK_DTYPE)
     header = header.copy() if isinstance(header, fits.Header) else fits.Header()
     order = np.argsort(wave)
+    grid = None
     if not np.all(order == np.arange(wave.size)):
         wave, values, var, mask = wave[order], values[order], var[order], mask[order]
-    return ExtractedSpectrum(wave, values, var, mask, header, str(path), unit.to_string())
+    else:
+        try:
+            grid = WavelengthGrid.from_header(header, axis=1)
+        except (KeyError, ValueError, TypeError):
+            grid = None
+        if grid is not None and (grid.n_pix != wave.size
+                                 or not np.allclose(grid.centres_angstrom(), wave, rtol=0,
+                                                    atol=1e-6 * float(np.min(np.diff(wave)))
+                                                    if wave.size > 1 else 1e-6)):
+            grid = None
+    return ExtractedSpectrum(wave, values, var, mask, header, str(path), unit.to_string(),
+                             grid)
