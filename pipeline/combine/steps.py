@@ -2,7 +2,7 @@
 
 For every target (OBJECT) of the standards and science frames, in each setup:
 
-1. **Inputs.** Aperture 1 (the highest-S/N object, the target) of each frame. Flux-
+1. **Inputs.** The target's spectrum (``{OBJECT}_target.fits``) of each frame. Flux-
    calibrated spectra (``spectra_fluxed/``) when *every* frame of the group was
    calibrated, else the extracted spectra (``spectra/``, converted to electron s⁻¹ Å⁻¹):
    a coadd never mixes the two. The listing says which (``input_kind``).
