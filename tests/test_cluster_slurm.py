@@ -195,7 +195,7 @@ def test_one_cluster_job_per_frame_chain(slurm_night, night):
         "group_frame_calibrate_frame_extract_spectra_flux_calibrate": len(usable["science"]),
         "group_sensitivity_fit_sensitivity_flux_calibrate": len(setups),
     }, jobs
-    assert sum(jobs.values()) == 14  # 32 SLURM jobs before the rules were grouped
+    # (the 28-file demo night: 18 SLURM jobs; 44 before the rules were grouped)
 
 
 def test_cancelled_job_is_reported_with_its_rule_and_frame(slurm_night, night):
@@ -335,7 +335,7 @@ def test_products_are_identical_to_the_local_run(slurm_night, night):
     assert kinds[".fits"] > 30 and kinds[".png"] > 10 and kinds[".ecsv"] > 10, kinds
 
 
-def test_benchmark_plans_the_night_with_a_relative_venv_path(tmp_path):
+def test_benchmark_plans_the_night_with_a_relative_venv_path(tmp_path, reduced_night):
     # The README's `run_demo_on_slurm.sh .venv`: the venv path is relative to where the script
     # is started, and the script changes directory before it runs Python (it used to fail
     # there with ".venv/bin/python: No such file or directory"). --plan needs no cluster.
@@ -346,7 +346,15 @@ def test_benchmark_plans_the_night_with_a_relative_venv_path(tmp_path):
     venv = os.path.relpath(sys.prefix, tmp_path)  # this venv, seen from the folder started in
     assert not os.path.isabs(venv) and (tmp_path / venv / "bin" / "python").exists()
     result = subprocess.run(["bash", str(CLUSTER_DIR / "run_demo_on_slurm.sh"), "--plan",
-                             "--worktree", venv], cwd=tmp_path, capture_output=True, text=True)
+                             "--worktree", "--raw", str(reduced_night["raw"]), venv],
+                            cwd=tmp_path, capture_output=True, text=True)
     assert result.returncode == 0, result.stdout[-3000:] + result.stderr[-3000:]
-    assert re.search(r"^SLURM jobs planned:\s+14$", result.stdout, flags=re.M), result.stdout
+    # one job per usable arc, standard and science frame, per setup a flat and a sensitivity
+    # job, one master bias (counts from the simulator's truth)
+    usable = _usable_frames(reduced_night["raw"])
+    setups = {setup for _, setup in usable["science"] + usable["standard"]}
+    expected = 1 + 2 * len(setups) + len(usable["arc"]) + len(usable["standard"]) + len(
+        usable["science"])
+    assert re.search(rf"^SLURM jobs planned:\s+{expected}$", result.stdout, flags=re.M), (
+        expected, result.stdout)
     assert "group calibrate_frame+extract_spectra+flux_calibrate" in result.stdout
