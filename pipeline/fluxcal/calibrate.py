@@ -6,6 +6,7 @@ with the slit fraction of a point source and the telluric transmission when give
 treatment and the header cards of its calibrated product.
 """
 
+import math
 import re
 import warnings
 from dataclasses import dataclass, field
@@ -20,7 +21,8 @@ from pipeline.core.headers import header_float
 from pipeline.core.maskbits import MaskBit
 from pipeline.fluxcal.extinction import as_airmass, extinction_at, spectrum_airmass, transmission
 from pipeline.fluxcal.pixels import MAG_PER_REL, as_mask, exclusion_mask, pixel_edges
-from pipeline.fluxcal.slitloss import header_slit_fraction, source_kind
+from pipeline.fluxcal.profiles import star_slit_fraction
+from pipeline.fluxcal.slitloss import profile_fwhm_arcsec, source_kind
 from pipeline.fluxcal.standards import FLUX_UNIT, table_flux_in_pixels
 
 __all__ = ["CalibratedSpectrum", "calibrate_spectrum", "CalibrationOptions", "SpectrumCalibration",
@@ -63,7 +65,7 @@ class CalibratedSpectrum:
 
 def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, exptime_s, airmass,
                        sensitivity, extinction=None, include_sensitivity_error=False,
-                       slit_fraction=None, telluric=None):
+                       slit_fraction=None, telluric=None, slit_fraction_rel_err=0.0):
     """Turn extracted electrons into flux density above the atmosphere.
 
     Parameters
@@ -90,6 +92,10 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     telluric : TelluricTemplate, optional
         Divide by the telluric transmission at ``airmass``; its error joins
         ``calibration_variance``.
+    slit_fraction_rel_err : float
+        Relative 1-sigma error of the slit-loss correction (the source's and the
+        standard's in quadrature); joins ``calibration_variance`` (grey: the same
+        fraction at every pixel).
 
     Returns
     -------
@@ -139,7 +145,8 @@ def calibrate_spectrum(wave_angstrom, counts_e, variance_e2, mask=None, *, expti
     cvar = np.full(wave.shape, np.nan)
     flux[good] = counts[good] / conversion[good]
     fvar[good] = var[good] / conversion[good] ** 2
-    cvar[good] = flux[good] ** 2 * (sens_rel_err[good] ** 2 + tell_sig[good] ** 2)
+    cvar[good] = flux[good] ** 2 * (sens_rel_err[good] ** 2 + tell_sig[good] ** 2
+                                    + float(slit_fraction_rel_err) ** 2)
     if include_sensitivity_error:
         fvar = fvar + cvar
     beyond = covered & ((wave < sensitivity.wave_min) | (wave > sensitivity.wave_max))
@@ -168,6 +175,9 @@ class CalibrationOptions:
     spatial_scale_arcsec_per_px: float = None
     seeing_exponent: float = -0.2
     extended_fwhm_ratio: float = 1.5
+    slit_centring_rms_arcsec: float = 0.0
+    airmass_policy: str = "computed"
+    airmass_warn_difference: float = 0.01
     exclude_regions: tuple = ()
     site: dict = None
 
@@ -187,33 +197,64 @@ class SpectrumCalibration:
     row: dict
 
 
-def slit_treatment(spectrum, sensitivity_header, options):
-    """The slit fraction to divide a spectrum by (or None) and the SLITLOSS card.
+def slit_treatment(spectrum, sensitivity_header, options, *, rectified=None, trace_rows=None):
+    """The slit fraction to divide a spectrum by (or None), its error and the SLITLOSS card.
 
-    Only when the sensitivity was corrected for slit loss (``SLITCORR``): a
-    profile at most ``extended_fwhm_ratio`` x the standard's (``STDFWHM``) is a
-    point source, divided by its own slit fraction (total flux); a wider one is
-    extended (flux through the slit). Otherwise the sensitivity includes the
-    standard's slit loss and nothing is divided.
+    Only when the sensitivity was corrected for slit loss (``SLITCORR``), with the
+    sensitivity's model (``SLITMOD``; 'gaussian' for products without it): a profile at
+    most ``extended_fwhm_ratio`` x the standard's (``STDFWHM``) is a point source,
+    divided by its own slit fraction (total flux); a wider one is extended (flux
+    through the slit). Otherwise the sensitivity includes the standard's slit loss and
+    nothing is divided.
 
     Returns
     -------
     fraction : ndarray or None
-    card : (str, str)
-        ``SLITLOSS`` value ('none', 'point' or 'extended') and its comment.
+    relative_error : float
+        Of the correction: the source's and the standard's (``STDSLERR``) in quadrature.
+    cards : dict
+        ``SLITLOSS`` ('none', 'point' or 'extended') and, for point sources, the model,
+        fraction and seeing cards.
     """
     if not sensitivity_header.get("SLITCORR", False):
-        return None, ("none", "sensitivity includes the standard's slit loss")
-    fraction, fwhm, ref = header_slit_fraction(
-        spectrum.header, spectrum.wave_angstrom,
+        return None, 0.0, {"SLITLOSS": ("none", "sensitivity includes the standard's slit loss")}
+    model = str(sensitivity_header.get("SLITMOD", "gaussian"))
+    if model == "moffat":
+        # extended sources are decided on the header FWHM before any profile is fitted
+        fwhm_header, _ = profile_fwhm_arcsec(
+            spectrum.header, spectrum.wave_angstrom,
+            spatial_scale_arcsec_per_px=options.spatial_scale_arcsec_per_px, path=spectrum.path)
+        standard_header_fwhm = float(sensitivity_header.get("STDHFWHM",
+                                                            sensitivity_header["STDFWHM"]))
+        if source_kind(fwhm_header, standard_header_fwhm,
+                       extended_fwhm_ratio=options.extended_fwhm_ratio) == "extended":
+            return None, 0.0, {"SLITLOSS": ("extended", f"flux through the slit (FWHM "
+                                            f"{fwhm_header:.2f} arcsec)")}
+    fraction, rel_err, details = star_slit_fraction(
+        spectrum, model=model, rectified=rectified, trace_rows=trace_rows,
         spatial_scale_arcsec_per_px=options.spatial_scale_arcsec_per_px,
-        seeing_exponent=options.seeing_exponent, path=spectrum.path)
-    kind = source_kind(fwhm, float(sensitivity_header["STDFWHM"]),
-                       extended_fwhm_ratio=options.extended_fwhm_ratio)
-    if kind == "point":
-        return fraction, ("point", f"total flux: slit fraction "
-                          f"{float(np.interp(ref, spectrum.wave_angstrom, fraction)):.3f}")
-    return None, ("extended", f"flux through the slit (FWHM {fwhm:.2f} arcsec)")
+        seeing_exponent=options.seeing_exponent,
+        centring_rms_arcsec=options.slit_centring_rms_arcsec)
+    fwhm = details["fwhm_arcsec"]
+    if model == "gaussian" and source_kind(
+            fwhm, float(sensitivity_header["STDFWHM"]),
+            extended_fwhm_ratio=options.extended_fwhm_ratio) == "extended":
+        return None, 0.0, {"SLITLOSS": ("extended", f"flux through the slit (FWHM {fwhm:.2f} "
+                                        "arcsec)")}
+    total_err = math.hypot(rel_err, float(sensitivity_header.get("STDSLERR", 0.0)))
+    cards = {"SLITLOSS": ("point", f"total flux: slit fraction "
+                          f"{details['slit_fraction_at_reference']:.3f}"),
+             "SLITMOD": (model, "slit-loss model"),
+             "SLITFRAC": (details["slit_fraction_at_reference"],
+                          "slit fraction at SLITREFW"),
+             "SLITREFW": (details["fwhm_reference_angstrom"], "[Angstrom] reference wavelength"),
+             "SLITFERR": (total_err, "rel. error of the slit correction (in CALVAR)"),
+             "SEEFWHM": (fwhm, "[arcsec] seeing FWHM at SLITREFW")}
+    if "beta" in details:
+        cards["SEEBETA"] = (details["beta"], "Moffat beta of the seeing disc")
+        cards["SLITCRMS"] = (details["centring_rms_arcsec"],
+                             "[arcsec] assumed rms centring across the slit")
+    return fraction, total_err, cards
 
 
 def standard_cards(sensitivity_header):
@@ -232,8 +273,8 @@ def standard_cards(sensitivity_header):
             for i, name in enumerate(names, start=1)}
 
 
-def fluxed_header_cards(*, sensitivity_name, sensitivity_header, airmass, airmass_how, info,
-                        slit_card, extinction_source, include_sensitivity_error):
+def fluxed_header_cards(*, sensitivity_name, sensitivity_header, airmass_choice, info,
+                        slit_cards, extinction_source, include_sensitivity_error):
     """Keywords added to a calibrated spectrum's header (values or (value, comment)).
 
     ``FLUXCAL = 'ABSOLUTE'`` follows the archive convention for spectra whose flux is in
@@ -243,9 +284,9 @@ def fluxed_header_cards(*, sensitivity_name, sensitivity_header, airmass, airmas
     cards = {
         "FLUXCAL": ("ABSOLUTE", "flux in absolute units (BUNIT)"),
         "SENSFILE": (sensitivity_name, "sensitivity product used"),
-        "AIRMUSED": (airmass, f"airmass used ({airmass_how})"),
+        **airmass_choice.cards(),
         "NEXTRAP": (info["n_extrapolated"], "pixels with extrapolated sensitivity"),
-        "SLITLOSS": slit_card,
+        **slit_cards,
         "TELLCOR": (info["telluric_corrected"],
                     "telluric bands divided by the standard's template"),
         "EXTTAB": (extinction_source, "extinction table"),
@@ -273,7 +314,7 @@ def compare_with_table(calibrated, table, exclude_regions):
 
 
 def calibrate_one(spectrum, *, sensitivity, sensitivity_header, sensitivity_name, extinction,
-                  options, setup="", reference=None):
+                  options, setup="", reference=None, rectified=None, trace_rows=None):
     """Calibrate one extracted spectrum with a setup's sensitivity.
 
     Parameters
@@ -291,6 +332,9 @@ def calibrate_one(spectrum, *, sensitivity, sensitivity_header, sensitivity_name
         The rule's setup; a spectrum whose SETUP differs is warned about.
     reference : FluxTable, optional
         A standard's own table: the result is compared with it.
+    rectified, trace_rows : Frame and ndarray, optional
+        The rectified frame and the spectrum's trace on it (the 'moffat' slit-loss
+        model measures the star's profile there).
 
     Returns
     -------
@@ -306,17 +350,21 @@ def calibrate_one(spectrum, *, sensitivity, sensitivity_header, sensitivity_name
         warnings.warn(f"{spectrum.path}: SETUP {spec_setup!r} differs from the rule's setup "
                       f"{setup!r}; calibrated with the sensitivity of {setup!r}",
                       FluxCalibrationWarning, stacklevel=2)
-    airmass, how = spectrum_airmass(spectrum.header, site=options.site, path=spectrum.path)
+    airmass, choice = spectrum_airmass(spectrum.header, site=options.site, path=spectrum.path,
+                                       policy=options.airmass_policy,
+                                       warn_difference=options.airmass_warn_difference)
     exptime = header_float(spectrum.header, "EXPTIME", path=spectrum.path)
-    fraction, slit_card = slit_treatment(spectrum, sensitivity_header, options)
+    fraction, slit_err, slit_cards = slit_treatment(spectrum, sensitivity_header, options,
+                                                    rectified=rectified, trace_rows=trace_rows)
     cal = calibrate_spectrum(spectrum.wave_angstrom, spectrum.values, spectrum.variance,
                              spectrum.mask, exptime_s=exptime, airmass=airmass,
                              sensitivity=sensitivity, extinction=extinction,
                              include_sensitivity_error=options.include_sensitivity_error,
-                             slit_fraction=fraction, telluric=sensitivity.info.get("telluric"))
+                             slit_fraction=fraction, slit_fraction_rel_err=slit_err,
+                             telluric=sensitivity.info.get("telluric"))
     cards = fluxed_header_cards(
         sensitivity_name=sensitivity_name, sensitivity_header=sensitivity_header,
-        airmass=airmass, airmass_how=how, info=cal.info, slit_card=slit_card,
+        airmass_choice=choice, info=cal.info, slit_cards=slit_cards,
         extinction_source=(extinction.source if extinction else "none"),
         include_sensitivity_error=options.include_sensitivity_error)
     notes = []
@@ -349,15 +397,19 @@ class FrameCalibration:
 
 
 def calibrate_frame(entries, *, frame, out_dir, setup, sensitivity, sensitivity_header,
-                    sensitivity_name, extinction, options, reason="", reference=None):
+                    sensitivity_name, extinction, options, reason="", reference=None,
+                    rectified=None):
     """Calibrate the spectra of one frame (or record why they stay uncalibrated).
 
     Parameters
     ----------
-    entries : sequence of (path, listed, spectrum)
-        Each input file, its row of the extraction listing (dict) and the
-        :class:`~pipeline.fluxcal.inputs.ExtractedSpectrum` read from it, or the
-        message (str) of why it could not be read.
+    entries : sequence of (path, listed, spectrum, trace_rows)
+        Each input file, its row of the extraction listing (dict), the
+        :class:`~pipeline.fluxcal.inputs.ExtractedSpectrum` read from it (or the
+        message (str) of why it could not be read) and its trace on the rectified
+        frame (or None).
+    rectified : Frame, optional
+        The frame's rectified frame (the 'moffat' slit-loss model).
     frame, setup : str
     out_dir : str or Path
         Where the calibrated files go (one per input, same file name).
@@ -373,7 +425,7 @@ def calibrate_frame(entries, *, frame, out_dir, setup, sensitivity, sensitivity_
     FrameCalibration
     """
     products, rows, plotted = [], [], []
-    for path, listed, spectrum in entries:
+    for path, listed, spectrum, trace_rows in entries:
         row = dict(object=listed.get("object", ""), aperture=listed.get("label", ""),
                    input_file=str(path), file=str(path), status="uncalibrated", reason=reason)
         if sensitivity is not None:
@@ -384,7 +436,8 @@ def calibrate_frame(entries, *, frame, out_dir, setup, sensitivity, sensitivity_
                 done = calibrate_one(spectrum, sensitivity=sensitivity,
                                      sensitivity_header=sensitivity_header,
                                      sensitivity_name=sensitivity_name, extinction=extinction,
-                                     options=options, setup=setup, reference=reference)
+                                     options=options, setup=setup, reference=reference,
+                                     rectified=rectified, trace_rows=trace_rows)
                 target = Path(out_dir) / Path(path).name
                 row.update(done.row, file=str(target))
                 products.append((target, done))

@@ -20,10 +20,11 @@ import numpy as np
 from pipeline.core.checks import as_1d_float
 from pipeline.core.errors import FluxCalibrationWarning, InputFileError
 from pipeline.core.headers import header_float
+from pipeline.core.observing import choose_airmass
 
 __all__ = [
     "ExtinctionCurve", "read_extinction_table", "extinction_at", "transmission",
-    "effective_airmass", "as_airmass", "spectrum_airmass",
+    "as_airmass", "spectrum_airmass",
 ]
 
 
@@ -207,98 +208,52 @@ def read_extinction_table(path):
                              "wavelengths") from exc
 
 
-def effective_airmass(ra_deg, dec_deg, date_obs, exptime_s, *, latitude_deg, longitude_deg,
-                      height_m):
-    """Airmass of a target averaged over an exposure, from its position and time.
-
-    Used only when a header has no usable ``AIRMASS``.
-
-    Parameters
-    ----------
-    ra_deg, dec_deg : float, degrees
-        ICRS position of the target.
-    date_obs : str
-        ISO 8601 UTC start of the exposure.
-    exptime_s : float, seconds
-    latitude_deg, longitude_deg : float, degrees
-    height_m : float, metres
-
-    Returns
-    -------
-    float
-        ``(X_start + 4 X_mid + X_end) / 6`` (Simpson's rule over the exposure;
-        common practice), with ``X = sec(z)``.
-
-    Notes
-    -----
-    The astropy AltAz transformation needs Earth-orientation data; the bundled
-    table is used without its age check (an error of a second in UT1 moves the
-    airmass by far less than 1e-4).
-    """
-    from astropy import units as u
-    from astropy.coordinates import AltAz, EarthLocation, SkyCoord
-    from astropy.time import Time
-    from astropy.utils import iers
-
-    location = EarthLocation.from_geodetic(longitude_deg * u.deg, latitude_deg * u.deg,
-                                           height_m * u.m)
-    start = Time(date_obs, scale="utc")
-    times = start + np.array([0.0, 0.5, 1.0]) * float(exptime_s) * u.s
-    target = SkyCoord(ra=ra_deg * u.deg, dec=dec_deg * u.deg, frame="icrs")
-    with iers.conf.set_temp("auto_max_age", None), iers.conf.set_temp("auto_download", False):
-        altaz = target.transform_to(AltAz(obstime=times, location=location))
-    alt = altaz.alt.to_value(u.deg)
-    if np.any(alt <= 0):
-        raise ValueError(f"target at RA {ra_deg}, Dec {dec_deg} is below the horizon during "
-                         f"the exposure starting {date_obs}")
-    secz = 1.0 / np.sin(np.radians(alt))
-    return float((secz[0] + 4 * secz[1] + secz[2]) / 6.0)
-
-
-def spectrum_airmass(header, *, site=None, path="<header>"):
-    """Airmass of a spectrum: header AIRMASS, or computed from RA, DEC, DATE-OBS, EXPTIME.
+def spectrum_airmass(header, *, site=None, path="<header>", policy="computed",
+                     warn_difference=0.01):
+    """The airmass of a spectrum and how it was obtained (:mod:`pipeline.core.observing`).
 
     Parameters
     ----------
     header : astropy.io.fits.Header
+        Standard keywords AIRMASS, RA, DEC (degrees or sexagesimal), DATE-OBS (and
+        TIME-OBS or UT when DATE-OBS holds only the date), EXPTIME.
     site : dict or None
-        ``latitude_deg``, ``longitude_deg``, ``height_m``; needed only when
-        AIRMASS is missing.
+        ``latitude_deg``, ``longitude_deg``, ``height_m`` (``instrument.site``).
     path : str
         The file the header came from (for messages).
+    policy : {'computed', 'header'}
+        ``observing.airmass``: the exposure-mean airmass computed from coordinates,
+        time and site whenever possible, or the header value whenever present.
+    warn_difference : float
+        ``observing.airmass_warn_difference``.
 
     Returns
     -------
     airmass : float
-    how : str
-        'header' or 'computed'.
+    choice : pipeline.core.observing.AirmassChoice
+        ``choice.cards()`` records the value used and its source (AIRMUSED, AIRMSRC,
+        AIRMCOMP, AIRMHDR); each of its notes is warned naming the file.
 
     Raises
     ------
     InputFileError
-        When AIRMASS is unusable and cannot be computed.
+        When neither a usable header AIRMASS nor a computed airmass exists.
     """
     try:
-        airmass = header_float(header, "AIRMASS", path=path, default=math.nan)
+        header_value = header_float(header, "AIRMASS", path=path, default=math.nan)
     except InputFileError:
-        airmass = math.nan
-    if math.isfinite(airmass) and airmass >= 1.0 - 1e-6:
-        return airmass, "header"
-    if not site:
-        raise InputFileError(path, f"header keyword AIRMASS is {header.get('AIRMASS')!r}; "
-                             "expected a number >= 1 (or a site to compute it from RA, DEC and "
-                             "DATE-OBS)")
-    try:
-        value = effective_airmass(
-            header_float(header, "RA", path=path), header_float(header, "DEC", path=path),
-            str(header["DATE-OBS"]), header_float(header, "EXPTIME", path=path),
-            latitude_deg=site["latitude_deg"], longitude_deg=site["longitude_deg"],
-            height_m=site["height_m"])
-    except (KeyError, ValueError, InputFileError) as exc:
-        raise InputFileError(path, f"header keyword AIRMASS is {header.get('AIRMASS')!r} and it "
-                             f"cannot be computed from RA, DEC, DATE-OBS ({exc}); expected "
-                             "AIRMASS >= 1") from exc
-    warnings.warn(f"{path}: AIRMASS {header.get('AIRMASS')!r} unusable; computed {value:.4f} "
-                  "from RA, DEC, DATE-OBS and EXPTIME at the site", FluxCalibrationWarning,
-                  stacklevel=2)
-    return value, "computed"
+        header_value = math.nan
+    if math.isfinite(header_value) and header_value < 1.0 - 1e-6:
+        header_value = math.nan
+    choice = choose_airmass(
+        header_airmass=header_value, ra=header.get("RA"), dec=header.get("DEC"),
+        date_obs=header.get("DATE-OBS"), exptime_s=header.get("EXPTIME"),
+        time_obs=header.get("TIME-OBS", header.get("UT")), site=site or None, policy=policy,
+        warn_difference=warn_difference)
+    if choice.source == "none":
+        raise InputFileError(path, f"header keyword AIRMASS is {header.get('AIRMASS')!r} and no "
+                             f"airmass could be computed ({'; '.join(choice.notes)}); expected "
+                             "AIRMASS >= 1, or RA, DEC, DATE-OBS, EXPTIME and the site")
+    for note in choice.notes:
+        warnings.warn(f"{path}: {note}", FluxCalibrationWarning, stacklevel=2)
+    return choice.value, choice

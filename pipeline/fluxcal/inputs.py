@@ -13,7 +13,7 @@ from pathlib import Path
 from pipeline.core.errors import FluxCalibrationWarning, InputFileError
 from pipeline.core.spectra import ExtractedSpectrum, read_spectrum
 
-__all__ = ["ExtractedSpectrum", "read_spectrum", "read_spectra_directory"]
+__all__ = ["ExtractedSpectrum", "read_spectrum", "read_spectra_directory", "read_trace_rows"]
 
 
 def read_spectra_directory(directory):
@@ -49,3 +49,17 @@ def read_spectra_directory(directory):
             out.append((directory / name, {c: row[c] for c in table.colnames}))
         return out
     return [(p, {}) for p in sorted(directory.glob("*.fits"))]
+
+
+def read_trace_rows(path):
+    """The star's trace (rows of the rectified frame, per column) from a 1-D product's
+    ``TRACE`` HDU, or None when the file has none."""
+    from astropy.io import fits
+
+    try:
+        with fits.open(path, memmap=False) as hdul:
+            if "TRACE" not in [h.name for h in hdul] or hdul["TRACE"].data is None:
+                return None
+            return np.asarray(hdul["TRACE"].data, dtype=float)
+    except OSError as exc:
+        raise InputFileError(path, f"cannot be read as FITS ({exc})") from exc

@@ -20,7 +20,7 @@ from pipeline.core.headers import header_float
 from pipeline.fluxcal.extinction import spectrum_airmass
 from pipeline.fluxcal.pixels import as_regions
 from pipeline.fluxcal.sensitivity import fit_sensitivity, measure_sensitivity
-from pipeline.fluxcal.slitloss import header_slit_fraction
+from pipeline.fluxcal.profiles import star_slit_fraction
 from pipeline.fluxcal.standards import choose_standard_spectrum, standard_name_mismatch
 from pipeline.fluxcal.telluric import telluric_template
 
@@ -34,7 +34,8 @@ class SensitivityOptions:
 
     Defaults equal config/schema.yaml. ``site`` (``latitude_deg``, ``longitude_deg``,
     ``height_m``) computes the airmass of spectra without AIRMASS;
-    ``spatial_scale_arcsec_per_px`` is the instrument's unbinned scale along the slit.
+    ``spatial_scale_arcsec_per_px`` is the instrument's unbinned scale along the slit;
+    ``slit_loss_model`` is one of :data:`pipeline.fluxcal.slitloss.SLIT_LOSS_MODELS`.
     """
 
     fit_kind: str = "spline"
@@ -48,9 +49,12 @@ class SensitivityOptions:
     telluric_bands: tuple = ()
     telluric_correction: bool = False
     telluric_airmass_exponent: float = 0.6
-    slit_loss_correction: bool = False
+    slit_loss_model: str = "none"
+    slit_centring_rms_arcsec: float = 0.0
     spatial_scale_arcsec_per_px: float = None
     seeing_exponent: float = -0.2
+    airmass_policy: str = "computed"
+    airmass_warn_difference: float = 0.01
     site: dict = None
 
 
@@ -70,6 +74,10 @@ class StandardObservation:
         The frame's readable spectra.
     problem : str
         Why the frame cannot be used ('' when it can).
+    rectified : Frame or None
+        The rectified frame the spectra come from (the 'moffat' slit-loss model).
+    traces : tuple of ndarray or None
+        Each spectrum's trace on ``rectified`` (same order as ``spectra``).
     """
 
     frame: str
@@ -77,6 +85,8 @@ class StandardObservation:
     table: object = None
     spectra: tuple = ()
     problem: str = ""
+    rectified: object = None
+    traces: tuple = ()
 
 
 @dataclass(frozen=True)
@@ -110,8 +120,8 @@ def measure_standard(observation, *, extinction, regions, options):
     points : SensitivityPoints
     row : dict
         Its QA-table row (``status`` 'used').
-    fwhm_arcsec : float or None
-        The standard's profile FWHM when the slit-loss model is on.
+    slit : dict
+        The standard's slit-loss details ({} without a slit-loss model).
 
     Raises
     ------
@@ -124,23 +134,27 @@ def measure_standard(observation, *, extinction, regions, options):
         raise FluxCalibrationError(f"{observation.frame}: no readable standard-star spectrum "
                                    "(the extraction found no object?)")
     table = observation.table
-    spec = observation.spectra[choose_standard_spectrum(observation.spectra)]
+    chosen = choose_standard_spectrum(observation.spectra)
+    spec = observation.spectra[chosen]
     obj = str(spec.header.get("OBJECT", ""))
     mismatch = standard_name_mismatch(obj, table.name)
     if mismatch:
         warnings.warn(f"{spec.path}: {mismatch} ({observation.table_path}); the table is used "
                       "as configured", FluxCalibrationWarning, stacklevel=2)
-    airmass, how = spectrum_airmass(spec.header, site=options.site, path=spec.path)
+    airmass, choice = spectrum_airmass(spec.header, site=options.site, path=spec.path,
+                                       policy=options.airmass_policy,
+                                       warn_difference=options.airmass_warn_difference)
     exptime = header_float(spec.header, "EXPTIME", path=spec.path)
-    fraction, details, fwhm = None, {}, None
-    if options.slit_loss_correction:
-        fraction, fwhm, ref = header_slit_fraction(
-            spec.header, spec.wave_angstrom,
+    fraction, details = None, {}
+    if options.slit_loss_model != "none":
+        traces = observation.traces
+        fraction, rel_err, details = star_slit_fraction(
+            spec, model=options.slit_loss_model, rectified=observation.rectified,
+            trace_rows=traces[chosen] if chosen < len(traces) else None,
             spatial_scale_arcsec_per_px=options.spatial_scale_arcsec_per_px,
-            seeing_exponent=options.seeing_exponent, path=spec.path)
-        details = {"fwhm_arcsec": fwhm, "fwhm_reference_angstrom": ref,
-                   "slit_fraction_at_reference": float(np.interp(ref, spec.wave_angstrom,
-                                                                 fraction))}
+            seeing_exponent=options.seeing_exponent,
+            centring_rms_arcsec=options.slit_centring_rms_arcsec)
+        details = {**details, "slit_fraction_rel_err": rel_err}
     points = measure_sensitivity(
         spec.wave_angstrom, spec.values, spec.variance, spec.mask, exptime_s=exptime,
         airmass=airmass, flux_table=table, extinction=extinction, exclude_regions=regions,
@@ -149,19 +163,43 @@ def measure_standard(observation, *, extinction, regions, options):
     if points.for_fit.sum() == 0:
         raise FluxCalibrationError(f"{spec.path}: no pixel of the spectrum is usable and "
                                    f"covered by the flux table {table.source}")
-    row = dict(object=obj, airmass=airmass, airmass_from=how, exptime_s=exptime,
+    row = dict(object=obj, airmass=airmass, airmass_from=choice.source, exptime_s=exptime,
                wave_min_angstrom=float(np.min(points.wave_angstrom[points.for_fit])),
                wave_max_angstrom=float(np.max(points.wave_angstrom[points.for_fit])),
                status="used", name=obj or table.name)
-    return points, row, fwhm
+    return points, row, details
 
 
-def sensitivity_header_cards(*, extinction, slit_loss_correction, standard_fwhms):
-    """Cards of the sensitivity product's primary header set by the setup's options."""
+def sensitivity_header_cards(*, extinction, slit_loss_model, standard_slit=(),
+                             centring_rms_arcsec=0.0):
+    """Cards of the sensitivity product's primary header set by the setup's options.
+
+    ``standard_slit``: the slit-loss details of each used standard
+    (:func:`pipeline.fluxcal.profiles.star_slit_fraction`).
+
+    >>> sensitivity_header_cards(extinction=None, slit_loss_model="none")["SLITMOD"]
+    ('none', 'slit-loss model: none, gaussian or moffat')
+    """
     cards = {"EXTTAB": ((extinction.source if extinction else "none"), "extinction table"),
-             "SLITCORR": (bool(slit_loss_correction), "sensitivity corrected for slit loss")}
-    if standard_fwhms:
-        cards["STDFWHM"] = (float(np.mean(standard_fwhms)), "[arcsec] standard's profile FWHM")
+             "SLITCORR": (slit_loss_model != "none", "sensitivity corrected for slit loss"),
+             "SLITMOD": (slit_loss_model, "slit-loss model: none, gaussian or moffat")}
+    if standard_slit:
+        cards["STDFWHM"] = (float(np.mean([d["fwhm_arcsec"] for d in standard_slit])),
+                            "[arcsec] standard's seeing FWHM")
+        cards["STDHFWHM"] = (float(np.mean([d["header_fwhm_arcsec"] for d in standard_slit])),
+                             "[arcsec] standard's extracted profile FWHM")
+        cards["STDSLFR"] = (float(np.mean([d["slit_fraction_at_reference"]
+                                           for d in standard_slit])),
+                            "standard's slit fraction at its reference wavelength")
+        cards["STDSLERR"] = (float(np.sqrt(np.mean([d["slit_fraction_rel_err"] ** 2
+                                                    for d in standard_slit]))),
+                             "relative error of the standard's slit fraction")
+        betas = [d["beta"] for d in standard_slit if "beta" in d]
+        if betas:
+            cards["STDBETA"] = (float(np.mean(betas)), "standard's Moffat beta")
+    if slit_loss_model == "moffat":
+        cards["SLITCRMS"] = (float(centring_rms_arcsec),
+                             "[arcsec] assumed rms centring across the slit")
     return cards
 
 
@@ -187,7 +225,7 @@ def sensitivity_for_setup(observations, *, setup, extinction, options,
     """
     bands = as_regions(options.telluric_bands, "telluric_bands")
     regions = as_regions(options.exclude_regions) + bands
-    points, rows, names, inputs, problems, fwhms = [], [], [], [], [], []
+    points, rows, names, inputs, problems, slit_details = [], [], [], [], [], []
     if extinction_problem:
         problems.append(f"extinction table unusable: {extinction_problem}")
         observations = []
@@ -195,14 +233,14 @@ def sensitivity_for_setup(observations, *, setup, extinction, options,
         row = dict(setup=setup, frame=observation.frame,
                    flux_table=Path(observation.table_path).name)
         try:
-            p, measured, fwhm = measure_standard(observation, extinction=extinction,
+            p, measured, slit = measure_standard(observation, extinction=extinction,
                                                  regions=regions, options=options)
             names.append(measured.pop("name"))
             row.update(measured)
             points.append(p)
             inputs.append(p.info["path"])
-            if fwhm is not None:
-                fwhms.append(fwhm)
+            if slit:
+                slit_details.append(slit)
         except (PipelineError, ValueError) as exc:
             problems.append(f"{observation.frame}: {exc}")
             warnings.warn(f"standard {observation.frame} not used for the sensitivity of setup "
@@ -224,7 +262,7 @@ def sensitivity_for_setup(observations, *, setup, extinction, options,
         reason = ("no usable standard-star spectrum: " + "; ".join(problems)) if problems else \
             "no standard-star spectrum given"
     meta = dict(setup=setup, fit_kind=options.fit_kind, degree=int(options.degree),
-                slit_loss_correction=bool(options.slit_loss_correction),
+                slit_loss_model=options.slit_loss_model,
                 telluric_bands_angstrom=[list(b) for b in bands],
                 knot_spacing_angstrom=float(options.knot_spacing_angstrom),
                 clip_sigma=float(options.clip_sigma),
@@ -254,8 +292,9 @@ def sensitivity_for_setup(observations, *, setup, extinction, options,
                 if options.telluric_correction and bands else None)
     meta.update(telluric_correction=telluric is not None)
     cards = sensitivity_header_cards(extinction=extinction,
-                                     slit_loss_correction=options.slit_loss_correction,
-                                     standard_fwhms=fwhms)
+                                     slit_loss_model=options.slit_loss_model,
+                                     standard_slit=slit_details,
+                                     centring_rms_arcsec=options.slit_centring_rms_arcsec)
     return SetupSensitivity(setup, fit, tuple(points), tuple(names), tuple(inputs), tuple(rows),
                             meta, telluric=telluric, header_cards=cards, regions=tuple(regions))
 

@@ -14,9 +14,10 @@ import warnings
 from pathlib import Path
 
 from pipeline.core.errors import FluxCalibrationWarning, InputFileError, PipelineError
+from pipeline.core.frames import read_frame
 from pipeline.fluxcal.calibrate import CalibrationOptions, calibrate_frame
 from pipeline.fluxcal.extinction import read_extinction_table
-from pipeline.fluxcal.inputs import read_spectra_directory, read_spectrum
+from pipeline.fluxcal.inputs import read_spectra_directory, read_spectrum, read_trace_rows
 from pipeline.fluxcal.products import (LISTING_NAME, read_sensitivity,
                                        sensitivity_qa_table, write_fluxed_spectrum,
                                        write_listing, write_sensitivity)
@@ -49,30 +50,36 @@ def load_extinction(extinction_table):
     return read_extinction_table(paths[0])
 
 
-def load_standard(directory, table_path):
-    """Read one standard frame's flux table and spectra; problems are recorded, not raised."""
+def load_standard(directory, table_path, rectified_path=None):
+    """Read one standard frame's flux table and spectra (with their traces and the
+    rectified frame when ``rectified_path`` is given); problems are recorded, not raised."""
     frame = Path(directory).name
     try:
         table = read_flux_table(table_path)
-        spectra = []
+        spectra, traces = [], []
         for path, _ in read_spectra_directory(directory):
             try:
                 spectra.append(read_spectrum(path))
+                traces.append(read_trace_rows(path) if rectified_path else None)
             except InputFileError as exc:
                 warnings.warn(str(exc), FluxCalibrationWarning, stacklevel=2)
+        rectified = read_frame(rectified_path) if rectified_path else None
     except (PipelineError, ValueError) as exc:
         return StandardObservation(frame, str(table_path), problem=str(exc))
-    return StandardObservation(frame, str(table_path), table, tuple(spectra))
+    return StandardObservation(frame, str(table_path), table, tuple(spectra),
+                               rectified=rectified, traces=tuple(traces))
 
 
 def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot,
-                         extinction_table=None, setup="", fit_kind="spline",
+                         extinction_table=None, rectified=None, setup="", fit_kind="spline",
                          knot_spacing_angstrom=250.0, degree=3, clip_sigma=3.0,
                          max_iterations=5, exclude_regions=(), error_floor_mag=0.002,
-                         max_extrapolation_angstrom=150.0, slit_loss_correction=False,
-                         spatial_scale_arcsec_per_px=None, seeing_exponent=-0.2,
+                         max_extrapolation_angstrom=150.0, slit_loss_model="none",
+                         slit_centring_rms_arcsec=0.0, spatial_scale_arcsec_per_px=None,
+                         seeing_exponent=-0.2,
                          telluric_bands=(), telluric_correction=False,
-                         telluric_airmass_exponent=0.6, site=None):
+                         telluric_airmass_exponent=0.6, airmass_policy="computed",
+                         airmass_warn_difference=0.01, site=None):
     """Adapter of rule ``fit_sensitivity``: one sensitivity per setup.
 
     Parameters
@@ -87,13 +94,18 @@ def fit_sensitivity_file(*, spectra, flux_tables, sensitivity, qa_table, qa_plot
         per standard) and the QA figure (PNG).
     extinction_table : str or None
         Site extinction table; None means no extinction correction (warned).
+    rectified : list of str, optional
+        The rectified frame of each standard (same order as ``spectra``); read
+        only by the 'moffat' slit-loss model.
     setup : str
     fit_kind, knot_spacing_angstrom, degree, clip_sigma, max_iterations, \
-max_extrapolation_angstrom, exclude_regions, error_floor_mag, slit_loss_correction, \
-spatial_scale_arcsec_per_px, seeing_exponent, telluric_bands, telluric_correction, \
+max_extrapolation_angstrom, exclude_regions, error_floor_mag, slit_loss_model, \
+slit_centring_rms_arcsec, spatial_scale_arcsec_per_px, seeing_exponent, telluric_bands, telluric_correction, \
 telluric_airmass_exponent, site
         See :class:`~pipeline.fluxcal.setup_sensitivity.SensitivityOptions` and
         config/schema.yaml (``flux_calibration``).
+    airmass_policy, airmass_warn_difference
+        ``observing.airmass`` and ``observing.airmass_warn_difference``.
 
     Returns
     -------
@@ -116,16 +128,22 @@ telluric_airmass_exponent, site
         telluric_bands=tuple(map(tuple, telluric_bands or ())),
         telluric_correction=telluric_correction,
         telluric_airmass_exponent=telluric_airmass_exponent,
-        slit_loss_correction=slit_loss_correction,
+        slit_loss_model=slit_loss_model, slit_centring_rms_arcsec=slit_centring_rms_arcsec,
         spatial_scale_arcsec_per_px=spatial_scale_arcsec_per_px,
-        seeing_exponent=seeing_exponent, site=site)
+        seeing_exponent=seeing_exponent, airmass_policy=airmass_policy,
+        airmass_warn_difference=airmass_warn_difference, site=site)
     extinction, extinction_problem = None, ""
     try:
         extinction = load_extinction(extinction_table)
     except InputFileError as exc:
         extinction_problem = str(exc)
+    frames = _paths(rectified) if slit_loss_model == "moffat" else []
+    if slit_loss_model == "moffat" and len(frames) != len(dirs):
+        raise ValueError(f"the 'moffat' slit-loss model needs one rectified frame per standard: "
+                         f"{len(dirs)} spectra directories, {len(frames)} rectified frames")
     observations = ([] if extinction_problem else
-                    [load_standard(d, t) for d, t in zip(dirs, tables)])
+                    [load_standard(d, t, r) for d, t, r in
+                     zip(dirs, tables, frames or [None] * len(dirs))])
     result = sensitivity_for_setup(observations, setup=setup, extinction=extinction,
                                    options=options, extinction_problem=extinction_problem)
 
@@ -156,10 +174,11 @@ telluric_airmass_exponent, site
 
 
 def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
-                        extinction_table=None, setup="", uncalibrated_reason="",
+                        extinction_table=None, rectified=None, setup="", uncalibrated_reason="",
                         include_sensitivity_error=False, spatial_scale_arcsec_per_px=None,
-                        seeing_exponent=-0.2, extended_fwhm_ratio=1.5, flux_table=None,
-                        exclude_regions=(), site=None):
+                        seeing_exponent=-0.2, extended_fwhm_ratio=1.5,
+                        slit_centring_rms_arcsec=0.0, flux_table=None, exclude_regions=(),
+                        airmass_policy="computed", airmass_warn_difference=0.01, site=None):
     """Adapter of rule ``flux_calibrate``: calibrate every spectrum of one frame.
 
     Parameters
@@ -174,12 +193,16 @@ def flux_calibrate_file(*, spectra, fluxed, qa_plot=None, sensitivity=None,
     sensitivity : str or empty list
         The setup's sensitivity product; empty when the setup has none.
     extinction_table : str or None
+    rectified : str, optional
+        The frame's rectified frame; read when the sensitivity's slit-loss model
+        (SLITMOD) is 'moffat'.
     setup : str
     uncalibrated_reason : str
         Why there is no sensitivity (set by the rule when the setup has no
         usable standard); used when ``sensitivity`` is empty.
     include_sensitivity_error, spatial_scale_arcsec_per_px, seeing_exponent, \
-extended_fwhm_ratio, exclude_regions, site
+extended_fwhm_ratio, slit_centring_rms_arcsec, exclude_regions, airmass_policy, \
+airmass_warn_difference, site
         See :class:`~pipeline.fluxcal.calibrate.CalibrationOptions`.
     flux_table : str or empty list, optional
         For a standard-star frame: its flux table; the calibrated spectrum is
@@ -200,7 +223,10 @@ extended_fwhm_ratio, exclude_regions, site
         include_sensitivity_error=include_sensitivity_error,
         spatial_scale_arcsec_per_px=spatial_scale_arcsec_per_px,
         seeing_exponent=seeing_exponent, extended_fwhm_ratio=extended_fwhm_ratio,
-        exclude_regions=tuple(map(tuple, exclude_regions or ())), site=site)
+        slit_centring_rms_arcsec=slit_centring_rms_arcsec,
+        exclude_regions=tuple(map(tuple, exclude_regions or ())),
+        airmass_policy=airmass_policy, airmass_warn_difference=airmass_warn_difference,
+        site=site)
     sens_paths = _paths(sensitivity)
     fit, reason, sens_header = None, str(uncalibrated_reason or ""), None
     if sens_paths:
@@ -224,20 +250,24 @@ extended_fwhm_ratio, exclude_regions, site
         except InputFileError as exc:
             warnings.warn(f"no comparison with the standard's table: {exc}",
                           FluxCalibrationWarning, stacklevel=2)
+    profiles_needed = (fit is not None and sens_header.get("SLITMOD") == "moffat"
+                       and bool(_paths(rectified)))
+    frame_2d = read_frame(_paths(rectified)[0]) if profiles_needed else None
     entries = []
     for path, listed in read_spectra_directory(spectra):
-        spectrum = None
+        spectrum, trace = None, None
         if fit is not None:
             try:
                 spectrum = read_spectrum(path)
+                trace = read_trace_rows(path) if profiles_needed else None
             except InputFileError as exc:
                 spectrum = str(exc)
-        entries.append((path, listed, spectrum))
+        entries.append((path, listed, spectrum, trace))
     result = calibrate_frame(entries, frame=frame, out_dir=out_dir, setup=setup,
                              sensitivity=fit, sensitivity_header=sens_header,
                              sensitivity_name=Path(sens_paths[0]).name if sens_paths else "",
                              extinction=extinction, options=options, reason=reason,
-                             reference=reference)
+                             reference=reference, rectified=frame_2d)
     for target, done in result.products:
         write_fluxed_spectrum(target, done.spectrum, done.calibrated,
                               header_extra=done.header_cards,

@@ -10,6 +10,7 @@ rule fit_sensitivity:
         spectra=lambda wc: PLAN.standard_spectra(wc.setup),
         flux_tables=lambda wc: PLAN.standard_flux_tables(wc.setup),
         extinction_table=PLAN.extinction_table(),
+        rectified=lambda wc: PLAN.standard_rectified(wc.setup),
     output:
         sensitivity=PLAN.out("flux", "sensitivity_{setup}.fits"),
         qa_table=PLAN.out("flux", "sensitivity_{setup}_qa.ecsv"),
@@ -32,6 +33,7 @@ rule fit_sensitivity:
 rule flux_calibrate:
     input:
         spectra=PLAN.out("spectra", "{frame}"),
+        rectified=PLAN.out("rectified", "{frame}.fits"),
         sensitivity=lambda wc: PLAN.frame_sensitivity(wc.frame),
         extinction_table=PLAN.extinction_table(),
         flux_table=lambda wc: PLAN.own_flux_table(wc.frame),

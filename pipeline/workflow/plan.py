@@ -49,7 +49,8 @@ SENSITIVITY_PARAM_KEYS = (("fit_kind", "fit_kind"), ("knot_spacing_angstrom", "k
                      ("degree", "degree"), ("clip_sigma", "clip_sigma"),
                      ("max_iterations", "max_iterations"), ("error_floor_mag", "error_floor_mag"),
                      ("max_extrapolation_angstrom", "max_extrapolation_angstrom"),
-                     ("slit_loss_correction", "slit_loss_correction"),
+                     ("slit_loss_model", "slit_loss_model"),
+                     ("slit_centring_rms_arcsec", "slit_centring_rms_arcsec"),
                      ("seeing_exponent", "seeing_exponent"),
                      ("exclude_regions", "exclude_regions_angstrom"),
                      ("telluric_bands", "telluric_bands_angstrom"),
@@ -343,6 +344,17 @@ class NightPlan:
     def standard_spectra(self, setup):
         return [self.out("spectra", rec.frame_id) for rec, _ in self.fluxcal_standards(setup)]
 
+    def standard_rectified(self, setup):
+        """The rectified frames of a setup's standards (their profiles along the slit)."""
+        return [self.out("rectified", f"{rec.frame_id}.fits")
+                for rec, _ in self.fluxcal_standards(setup)]
+
+    def airmass_params(self):
+        """The observing.airmass choice, as the flux-calibration adapters take it."""
+        observing = self.config["observing"]
+        return {"airmass_policy": observing["airmass"],
+                "airmass_warn_difference": observing["airmass_warn_difference"]}
+
     def standard_flux_tables(self, setup):
         return [table for _, table in self.fluxcal_standards(setup)]
 
@@ -367,6 +379,7 @@ class NightPlan:
         params = {name: fluxcal[key] for name, key in SENSITIVITY_PARAM_KEYS}
         params["spatial_scale_arcsec_per_px"] = self.instrument["spatial_scale_arcsec_per_px"]
         params["site"] = self.site()
+        params.update(self.airmass_params())
         return params
 
     def flux_calibrate_params(self):
@@ -376,7 +389,8 @@ class NightPlan:
                 "spatial_scale_arcsec_per_px": self.instrument["spatial_scale_arcsec_per_px"],
                 "seeing_exponent": fluxcal["seeing_exponent"],
                 "extended_fwhm_ratio": fluxcal["extended_fwhm_ratio"],
-                "site": self.site()}
+                "slit_centring_rms_arcsec": fluxcal["slit_centring_rms_arcsec"],
+                **self.airmass_params(), "site": self.site()}
 
     def own_flux_table(self, frame_id):
         """A standard frame's flux table (for the end-to-end check); ``[]`` for other frames."""
