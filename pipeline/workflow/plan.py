@@ -49,8 +49,7 @@ SENSITIVITY_PARAM_KEYS = (("fit_kind", "fit_kind"), ("knot_spacing_angstrom", "k
                      ("degree", "degree"), ("clip_sigma", "clip_sigma"),
                      ("max_iterations", "max_iterations"), ("error_floor_mag", "error_floor_mag"),
                      ("max_extrapolation_angstrom", "max_extrapolation_angstrom"),
-                     ("slit_loss_model", "slit_loss_model"),
-                     ("slit_centring_rms_arcsec", "slit_centring_rms_arcsec"),
+                     ("slit_loss_model", "slit_loss_model"), ("slit_centring_rms_arcsec",) * 2,
                      ("seeing_exponent", "seeing_exponent"),
                      ("exclude_regions", "exclude_regions_angstrom"),
                      ("telluric_bands", "telluric_bands_angstrom"),
@@ -345,15 +344,12 @@ class NightPlan:
         return [self.out("spectra", rec.frame_id) for rec, _ in self.fluxcal_standards(setup)]
 
     def standard_rectified(self, setup):
-        """The rectified frames of a setup's standards (their profiles along the slit)."""
         return [self.out("rectified", f"{rec.frame_id}.fits")
                 for rec, _ in self.fluxcal_standards(setup)]
 
     def airmass_params(self):
-        """The observing.airmass choice, as the flux-calibration adapters take it."""
-        observing = self.config["observing"]
-        return {"airmass_policy": observing["airmass"],
-                "airmass_warn_difference": observing["airmass_warn_difference"]}
+        return {"airmass_policy": self.config["observing"]["airmass"],
+                "airmass_warn_difference": self.config["observing"]["airmass_warn_difference"]}
 
     def standard_flux_tables(self, setup):
         return [table for _, table in self.fluxcal_standards(setup)]
@@ -378,8 +374,7 @@ class NightPlan:
         fluxcal = self.config["flux_calibration"]
         params = {name: fluxcal[key] for name, key in SENSITIVITY_PARAM_KEYS}
         params["spatial_scale_arcsec_per_px"] = self.instrument["spatial_scale_arcsec_per_px"]
-        params["site"] = self.site()
-        params.update(self.airmass_params())
+        params.update(site=self.site(), **self.airmass_params())
         return params
 
     def flux_calibrate_params(self):
