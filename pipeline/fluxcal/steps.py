@@ -164,8 +164,9 @@ telluric_airmass_exponent, site
                         title=f"sensitivity {setup}")
         return None
     fit = result.fit
-    qa.plot_sensitivity(fit, result.points, qa_plot, exclude_regions=result.regions,
-                        title=f"sensitivity {setup} from {', '.join(result.standards)}")
+    qa.plot_sensitivity(fit, result.points, qa_plot, exclude_regions=options.exclude_regions,
+                        telluric_bands=options.telluric_bands,
+                        title=f"sensitivity of setup {setup} from {', '.join(result.standards)}")
     log.info("setup %s: sensitivity from %s, %.1f-%.1f A, rms %.2f %% per pixel "
              "(%.2f %% binned), %d of %d pixels rejected", setup, ", ".join(result.standards),
              fit.wave_min, fit.wave_max, fit.info["rms_percent"],
