@@ -10,6 +10,8 @@ listing.
 import warnings
 from pathlib import Path
 
+import numpy as np
+
 from pipeline.core.errors import FluxCalibrationWarning, InputFileError
 from pipeline.core.spectra import ExtractedSpectrum, read_spectrum
 

@@ -7,6 +7,9 @@ validated config (schema defaults filled in) and the night's inventory
 and returns paths, params or lists, so the plan is tested without Snakemake
 (tests/test_plan.py).
 
+Longer than 500 lines because it is the one table of every rule's inputs and params
+(one short method each); a split by step family is due when it grows further.
+
 Rerun properties the methods keep (tests/test_workflow.py checks them with the
 real ``snakemake``):
 
