@@ -21,10 +21,7 @@ from pipeline.extraction.products import load_reference_trace
 from pipeline.extraction.qa import plot_rectified_frame, plot_spectra
 from pipeline.extraction.trace import TracingWarning
 
-try:  # the wavelength package's product reader
-    from pipeline.wavelength.products import load_wavelength_map
-except ImportError:  # until pipeline/wavelength/products.py lands
-    from pipeline.wavelength.solve import load_wavelength_map
+from pipeline.wavelength.products import load_wavelength_map
 
 __all__ = ["extract_frame_file"]
 
