@@ -297,7 +297,7 @@ def combine_spectra_file(*, spectra, combined, fluxed=(), site, options):
     for plan in plans:
         if plan.reason:
             warnings.warn(f"{plan.object} in {plan.setup}: {plan.reason}", CombineWarning)
-        spectra_read = [read_spectrum(p) for p in plan.paths]
+        spectra_read = [read_spectrum(p, expected_unit=None) for p in plan.paths]
         results.append(combine_group(plan, spectra_read, site=site,
                                      velocity_frame=options["velocity_frame"],
                                      vacuum_wavelengths=options["vacuum_wavelengths"],
