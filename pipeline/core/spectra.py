@@ -270,6 +270,26 @@ class ExtractedSpectrum:
         return self.values
 
 
+def wcs_wavelengths_angstrom(header, n_pix):
+    """Wavelengths (Angstrom) of pixels ``0 .. n_pix - 1`` from a header's 1-D spectral WCS.
+
+    Returns None when the header has no 1-D WCS. Raises ``ValueError``, ``TypeError`` or
+    ``astropy.units.UnitsError`` when its cards cannot be evaluated or its unit is not
+    spectral.
+    """
+    from astropy import units as u  # imported here: astropy.wcs costs start-up time
+    from astropy.wcs import WCS, FITSFixedWarning
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", FITSFixedWarning)
+        wcs = WCS(header)
+    if wcs.naxis != 1:
+        return None
+    world = wcs.all_pix2world(np.arange(n_pix), 0)[0]
+    cunit = u.Unit(wcs.wcs.cunit[0] or "Angstrom")
+    return (world * cunit).to_value(u.AA, equivalencies=u.spectral())
+
+
 #: uncertainty HDU names in specutils' order of preference, with the power giving variance
 _UNCERT_HDUS = (("STD", 2), ("ERR", 2), ("UNCERT", 2), ("VAR", 1), ("IVAR", -1))
 
@@ -280,7 +300,6 @@ def _read_wcs1d_direct(path):
     VAR/STD/ERR/UNCERT/IVAR, mask from MASK/DQ/QUALITY). Returns None when the file does not
     look like that, so that the caller falls back to specutils (slow to import: ~1 s)."""
     from astropy import units as u
-    from astropy.wcs import WCS, FITSFixedWarning
 
     try:
         with fits.open(path, memmap=False) as hdul:
@@ -303,14 +322,9 @@ def _read_wcs1d_direct(path):
                 mask = np.asarray(hdul[mask_name].data)
                 if hdul[mask_name].header.get("BFORM", "B") in ("L", "X"):
                     mask = mask.astype(bool)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", FITSFixedWarning)
-            wcs = WCS(header)
-        if wcs.naxis != 1:
+        wave = wcs_wavelengths_angstrom(header, values.size)
+        if wave is None:
             return None
-        world = wcs.all_pix2world(np.arange(values.size), 0)[0]
-        cunit = u.Unit(wcs.wcs.cunit[0] or "Angstrom")
-        wave = (world * cunit).to_value(u.AA, equivalencies=u.spectral())
         unit = u.Unit(header.get("BUNIT", ""))
     except (OSError, ValueError, TypeError, u.UnitsError):
         return None

@@ -41,6 +41,7 @@ import numpy as np
 
 from pipeline.core import maskbits, provenance
 from pipeline.core.errors import FluxCalibrationError, InputFileError
+from pipeline.core.spectra import wcs_wavelengths_angstrom
 from pipeline.fluxcal.sensitivity import SensitivityFit
 from pipeline.fluxcal.standards import FLUX_UNIT
 from pipeline.fluxcal.telluric import TelluricTemplate
@@ -73,19 +74,11 @@ def _linear_wcs_cards(wave_angstrom):
 
 
 def _wcs_matches(header, wave_angstrom):
-    from astropy import units as u
-    from astropy.wcs import WCS, FITSFixedWarning
-
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", FITSFixedWarning)
-            wcs = WCS(header)
-            if wcs.naxis != 1:
-                return False
-            world = wcs.all_pix2world(np.arange(wave_angstrom.size), 0)[0]
-            unit = u.Unit(wcs.wcs.cunit[0] or "Angstrom")
-        world = (world * unit).to_value(u.AA)
+        world = wcs_wavelengths_angstrom(header, wave_angstrom.size)
     except Exception:  # noqa: BLE001 - any WCS problem means "does not match"
+        return False
+    if world is None:
         return False
     return bool(np.allclose(world, wave_angstrom, rtol=0, atol=1e-6 * np.min(np.diff(wave_angstrom))))
 
